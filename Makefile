@@ -1,0 +1,46 @@
+# stagewatch developer commands. `make help` lists them.
+# Every target sets up .venv first, so `make test` works on a fresh clone.
+
+SHELL := /bin/bash
+.DEFAULT_GOAL := help
+
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+PYTHON ?= python3
+
+# numba's cache=True needs a writable directory, even to read cache hits; the
+# estimator package keys its cache folder on a digest of its sources below this.
+export STAGEWATCH_CACHE_DIR := $(CURDIR)/.cache
+
+.PHONY: help venv run test bench lint clean
+
+help: ## List the targets
+	@echo "stagewatch make targets:"
+	@grep -E '^[a-z][a-zA-Z_-]*:.*## ' $(MAKEFILE_LIST) \
+		| awk 'BEGIN {FS = ":.*## "} {printf "  %-8s %s\n", $$1, $$2}'
+
+$(STAMP): pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/pip install -e '.[dev]'
+	touch $@
+
+venv: $(STAMP) ## Create .venv and install stagewatch with its dev extras
+
+run: $(STAMP) ## Simulate and estimate a short invented scenario; print estimates beside truth
+	$(BIN)/stagewatch demo
+
+test: $(STAMP) ## Install missing system packages (if any), then run the whole test suite
+	bash scripts/system-deps.sh
+	$(BIN)/pytest
+
+bench: $(STAMP) ## Time the filter against the reference implementation
+	$(BIN)/python bench/bench_filter.py
+
+lint: $(STAMP) ## ruff check, then mypy
+	$(BIN)/ruff check estimator service tests bench
+	$(BIN)/mypy
+
+clean: ## Remove .venv and every cache
+	rm -rf $(VENV) .cache .pytest_cache .ruff_cache .mypy_cache .hypothesis *.egg-info
+	find . -path ./.git -prune -o -type d -name __pycache__ -exec rm -rf {} +

@@ -1,0 +1,33 @@
+#!/usr/bin/env bash
+# Install the Debian packages the test suite needs, if any are missing.
+#
+# Run by `make test`. With every package present it does nothing. As root it
+# installs what is missing; otherwise it prints the one command to run and fails,
+# so a missing package is never mistaken for a passing suite.
+set -euo pipefail
+
+# Space-separated Debian package names. Empty at this stage; later suites add
+# e.g. chromium (browser tests), postgresql (database suite), wrk (load tests).
+PACKAGES=""
+
+missing=()
+for pkg in $PACKAGES; do
+    if ! dpkg -s "$pkg" >/dev/null 2>&1; then
+        missing+=("$pkg")
+    fi
+done
+
+if [ "${#missing[@]}" -eq 0 ]; then
+    exit 0
+fi
+
+if [ "$(id -u)" -eq 0 ]; then
+    echo "system-deps: installing ${missing[*]}"
+    export DEBIAN_FRONTEND=noninteractive
+    apt-get update -qq
+    apt-get install -y -qq "${missing[@]}"
+else
+    echo "system-deps: missing Debian packages: ${missing[*]}" >&2
+    echo "system-deps: run: sudo apt-get install -y ${missing[*]}" >&2
+    exit 1
+fi
