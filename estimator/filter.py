@@ -1,0 +1,889 @@
+"""Extended Kalman filter for the cascade: compiled step kernels and the event runner.
+
+The filter state is the augmented vector of :mod:`estimator.model` (every species
+in every vessel, the activity, the measured feed concentrations and any
+inlet-analyzer biases). Between readings the state and covariance are propagated
+exactly for held inputs (:mod:`estimator.propagate`); each analyzer or lab reading
+is a scalar update (or a vector update for readings of one analyzer taken
+together) with
+
+- chi-square innovation gating: a reading whose normalised innovation squared
+  exceeds the ``gate_probability`` quantile is rejected, and kept with its value
+  and NIS as a gated reading;
+- the Joseph-form covariance update ``P = (I - K H) P (I - K H)^T + K R K^T``,
+  evaluated in O(n^2) for a scalar H;
+- non-negative concentrations, activity and feed states by estimate projection:
+  the update is projected on the active bounds in the P^-1 metric;
+- a symmetric positive-definite covariance (symmetrised; a failed Cholesky
+  factorisation adds the smallest diagonal load that restores it).
+
+Matrices: x (n,), P (n, n), u (1 + N + S,), H a row of ones at the measured state
+and its bias, R the reading variance [unit^2], S = H P H^T + R.
+
+The event runner processes a time-ordered log of input changes and measurements in
+one compiled call; the Python class :class:`CascadeFilter` keeps that log, keeps
+snapshots of (t, x, P, u) and rewinds to the last snapshot before a late reading
+(analyzer dead time, lab results, late historian batches), then runs forward
+again.
+
+References
+----------
+Y. Bar-Shalom, X. R. Li, T. Kirubarajan, *Estimation with Applications to Tracking
+and Navigation*, Wiley 2001, ch. 5 (consistency) and 10 (the EKF).
+D. Simon, "Kalman filtering with state constraints: a survey of linear and
+nonlinear algorithms", IET Control Theory & Applications 4(8):1303-1318, 2010
+(estimate projection).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numba
+import numpy as np
+from scipy.stats import chi2
+
+from estimator.model import IP_N, IP_S, FloatArray, IntArray, TrainModel
+from estimator.propagate import propagate_into, workspace
+
+KIND_INPUT = 0
+KIND_MEASUREMENT = 1
+
+STATUS_PENDING = -1
+STATUS_INPUT = 0
+STATUS_ACCEPTED = 1
+STATUS_GATED = 2
+
+_MAX_GROUP = 8
+
+
+@numba.njit(cache=True, error_model="numpy")
+def _cholesky_ok(a: FloatArray, low: FloatArray) -> bool:
+    """Whether ``a`` has a Cholesky factor (computed into ``low``, (n, n))."""
+    n = a.shape[0]
+    for j in range(n):
+        d = a[j, j]
+        for k in range(j):
+            d -= low[j, k] * low[j, k]
+        if not d > 0.0:
+            return False
+        low[j, j] = math.sqrt(d)
+        for i in range(j + 1, n):
+            acc = a[i, j]
+            for k in range(j):
+                acc -= low[i, k] * low[j, k]
+            low[i, j] = acc / low[j, j]
+    return True
+
+
+@numba.njit(cache=True, error_model="numpy")
+def ensure_spd(cov: FloatArray) -> int:
+    """Symmetrise ``cov`` in place and load its diagonal until it is positive definite.
+
+    Returns the number of diagonal loads applied (0 when P was already fine).
+    """
+    return ensure_spd_into(cov, np.empty_like(cov))
+
+
+@numba.njit(cache=True, error_model="numpy")
+def ensure_spd_into(cov: FloatArray, scratch: FloatArray) -> int:
+    """:func:`ensure_spd` with an (n, n) scratch array."""
+    n = cov.shape[0]
+    for i in range(n):
+        for j in range(i + 1, n):
+            m = 0.5 * (cov[i, j] + cov[j, i])
+            cov[i, j] = m
+            cov[j, i] = m
+    loads = 0
+    scale = 0.0
+    for i in range(n):
+        scale = max(scale, abs(cov[i, i]))
+    scale = max(scale, 1e-300)
+    jitter = 1e-14 * scale
+    while not _cholesky_ok(cov, scratch) and loads < 40:
+        for i in range(n):
+            cov[i, i] += jitter
+        jitter *= 10.0
+        loads += 1
+    return loads
+
+
+@numba.njit(cache=True, error_model="numpy")
+def project_bounds(x: FloatArray, cov: FloatArray, lower: IntArray) -> int:
+    """Project ``x`` in place onto ``x[j] >= 0`` for every j in ``lower``.
+
+    Estimate projection in the P^-1 metric: for the active set D,
+    ``x <- x - P D^T (D P D^T)^-1 D x``, repeated while new bounds become active.
+    Returns the number of bounds active at the end. P is left unchanged.
+    """
+    n_low = lower.shape[0]
+    violated = False
+    for k in range(n_low):
+        violated = violated or x[lower[k]] < 0.0
+    if not violated:
+        return 0
+    active = np.zeros(n_low, dtype=np.bool_)
+    n_active = 0
+    for _ in range(n_low):
+        grew = False
+        for k in range(n_low):
+            if not active[k] and x[lower[k]] < 0.0:
+                active[k] = True
+                n_active += 1
+                grew = True
+        if not grew:
+            break
+        idx = np.empty(n_active, dtype=np.int64)
+        c = 0
+        for k in range(n_low):
+            if active[k]:
+                idx[c] = lower[k]
+                c += 1
+        dpd = np.empty((n_active, n_active))
+        dx = np.empty(n_active)
+        for a in range(n_active):
+            dx[a] = x[idx[a]]
+            for b in range(n_active):
+                dpd[a, b] = cov[idx[a], idx[b]]
+        lam = np.linalg.solve(dpd, dx)
+        for i in range(x.shape[0]):
+            acc = 0.0
+            for a in range(n_active):
+                acc += cov[i, idx[a]] * lam[a]
+            x[i] -= acc
+        for a in range(n_active):
+            x[idx[a]] = 0.0
+    for k in range(n_low):
+        if x[lower[k]] < 0.0:
+            x[lower[k]] = 0.0
+    return n_active
+
+
+@numba.njit(cache=True, error_model="numpy")
+def joseph_update(
+    x: FloatArray, cov: FloatArray, i_state: int, i_bias: int, z: float, var: float
+) -> float:
+    """Scalar EKF update in place for ``z = x[i_state] (+ x[i_bias]) + v``, v ~ N(0, var).
+
+    The covariance is updated in Joseph form, ``(I - K H) P (I - K H)^T + K R K^T``,
+    computed as ``B = P (I - K H)^T = P - u K^T``, then ``B - K (H B) + R K K^T``
+    with ``u = P H^T``: O(n^2) work for a scalar reading. Returns the innovation.
+    """
+    return joseph_update_into(x, cov, i_state, i_bias, z, var, np.empty(3 * x.shape[0]))
+
+
+@numba.njit(cache=True, error_model="numpy")
+def joseph_update_into(
+    x: FloatArray,
+    cov: FloatArray,
+    i_state: int,
+    i_bias: int,
+    z: float,
+    var: float,
+    scratch: FloatArray,
+) -> float:
+    """:func:`joseph_update` with a scratch array of length 3n."""
+    n = x.shape[0]
+    u = scratch[:n]
+    gain = scratch[n : 2 * n]
+    hb = scratch[2 * n : 3 * n]
+    for i in range(n):
+        u[i] = cov[i, i_state] + (cov[i, i_bias] if i_bias >= 0 else 0.0)
+    hph = u[i_state] + (u[i_bias] if i_bias >= 0 else 0.0)
+    s = hph + var
+    innovation = z - x[i_state] - (x[i_bias] if i_bias >= 0 else 0.0)
+    for i in range(n):
+        gain[i] = u[i] / s
+        x[i] += gain[i] * innovation
+    for i in range(n):
+        for j in range(n):
+            cov[i, j] -= u[i] * gain[j]
+    for j in range(n):
+        hb[j] = cov[i_state, j] + (cov[i_bias, j] if i_bias >= 0 else 0.0)
+    for i in range(n):
+        for j in range(n):
+            cov[i, j] += -gain[i] * hb[j] + var * gain[i] * gain[j]
+    return innovation
+
+
+@numba.njit(cache=True, error_model="numpy")
+def update_group(
+    x: FloatArray,
+    cov: FloatArray,
+    i_state: IntArray,
+    i_bias: IntArray,
+    z: FloatArray,
+    var: FloatArray,
+    gate: float,
+    lower: IntArray,
+    innovations: FloatArray,
+) -> tuple[bool, float]:
+    """Gate and apply a group of simultaneous readings (an analyzer's vector).
+
+    See :func:`update_group_into`; this form allocates its own scratch.
+    """
+    scratch = np.empty(3 * x.shape[0])
+    return update_group_into(x, cov, i_state, i_bias, z, var, gate, lower, innovations, scratch)
+
+
+@numba.njit(cache=True, error_model="numpy")
+def update_group_into(
+    x: FloatArray,
+    cov: FloatArray,
+    i_state: IntArray,
+    i_bias: IntArray,
+    z: FloatArray,
+    var: FloatArray,
+    gate: float,
+    lower: IntArray,
+    innovations: FloatArray,
+    scratch: FloatArray,
+) -> tuple[bool, float]:
+    """Gate and apply a group of simultaneous readings (an analyzer's vector).
+
+    The joint NIS ``nu^T S^-1 nu`` is compared with ``gate`` (the chi-square
+    quantile for len(z) degrees of freedom); if it passes, the readings are applied
+    one by one (equivalent to the joint update for independent reading noise), then
+    the bounds are projected (the caller keeps P positive definite with
+    :func:`ensure_spd` once the readings of a time are done). ``innovations`` gets
+    each reading's innovation before the update. Returns (accepted, nis).
+    """
+    m = z.shape[0]
+    if m == 1:
+        ia = i_state[0]
+        ba = i_bias[0]
+        nu0 = z[0] - x[ia] - (x[ba] if ba >= 0 else 0.0)
+        s0 = cov[ia, ia] + var[0]
+        if ba >= 0:
+            s0 += 2.0 * cov[ia, ba] + cov[ba, ba]
+        innovations[0] = nu0
+        nis = nu0 * nu0 / s0
+        if not nis <= gate:
+            return False, nis
+        joseph_update_into(x, cov, ia, ba, z[0], var[0], scratch)
+        project_bounds(x, cov, lower)
+        return True, nis
+    s = np.empty((m, m))
+    nu = np.empty(m)
+    for a in range(m):
+        ia = i_state[a]
+        ba = i_bias[a]
+        nu[a] = z[a] - x[ia] - (x[ba] if ba >= 0 else 0.0)
+        innovations[a] = nu[a]
+        for b in range(m):
+            ib = i_state[b]
+            bb = i_bias[b]
+            v = cov[ia, ib]
+            if bb >= 0:
+                v += cov[ia, bb]
+            if ba >= 0:
+                v += cov[ba, ib]
+                if bb >= 0:
+                    v += cov[ba, bb]
+            s[a, b] = v
+        s[a, a] += var[a]
+    nis = float(nu @ np.linalg.solve(s, nu))
+    if not nis <= gate:
+        return False, nis
+    for a in range(m):
+        joseph_update_into(x, cov, i_state[a], i_bias[a], z[a], var[a], scratch)
+    project_bounds(x, cov, lower)
+    return True, nis
+
+
+@numba.njit(cache=True, error_model="numpy")
+def run_events(
+    x: FloatArray,
+    cov: FloatArray,
+    u: FloatArray,
+    t: float,
+    ev_t: FloatArray,
+    ev_kind: IntArray,
+    ev_idx: IntArray,
+    ev_val: FloatArray,
+    start: int,
+    stop: int,
+    ip: IntArray,
+    fp: FloatArray,
+    noise: FloatArray,
+    m_state: IntArray,
+    m_bias: IntArray,
+    m_var: FloatArray,
+    m_group: IntArray,
+    gates: FloatArray,
+    lower: IntArray,
+    snap_every: float,
+    snap_last: float,
+    ev_status: IntArray,
+    ev_nis: FloatArray,
+    ev_innov: FloatArray,
+    out_t: FloatArray,
+    out_x: FloatArray,
+    out_var: FloatArray,
+    snap_pos: IntArray,
+    snap_t: FloatArray,
+    snap_x: FloatArray,
+    snap_cov: FloatArray,
+    snap_u: FloatArray,
+) -> tuple[float, int, int, float]:
+    """Run the filter over events ``start..stop-1`` of a time-ordered log.
+
+    ``x``, ``cov`` and ``u`` are updated in place. Per event it writes the status,
+    NIS and innovation; per distinct event time it writes one output row (time,
+    state, variances); after a time whose events are done, and at least
+    ``snap_every`` seconds after the last snapshot, it writes a snapshot whose
+    ``snap_pos`` is the index of the next event to run.
+
+    Returns (time reached, output rows written, snapshots written, last snapshot time).
+    """
+    n = x.shape[0]
+    n_out = 0
+    n_snap = 0
+    k = start
+    work, iwork = workspace(n, ip[IP_N] * ip[IP_S])
+    noise_matrix = np.diag(noise)
+    scratch = np.empty(3 * n)
+    chol = np.empty((n, n))
+    grp_state = np.empty(_MAX_GROUP, dtype=np.int64)
+    grp_bias = np.empty(_MAX_GROUP, dtype=np.int64)
+    grp_z = np.empty(_MAX_GROUP)
+    grp_var = np.empty(_MAX_GROUP)
+    grp_innov = np.empty(_MAX_GROUP)
+    while k < stop:
+        te = ev_t[k]
+        if te > t:
+            propagate_into(x, cov, u, te - t, ip, fp, noise_matrix, work, iwork)
+            t = te
+        if ev_kind[k] == KIND_INPUT:
+            u[ev_idx[k]] = ev_val[k]
+            ev_status[k] = STATUS_INPUT
+            ev_nis[k] = 0.0
+            ev_innov[k] = 0.0
+            k += 1
+        else:
+            group = m_group[ev_idx[k]]
+            k2 = k
+            while (
+                k2 < stop
+                and k2 - k < _MAX_GROUP
+                and ev_t[k2] == te
+                and ev_kind[k2] == KIND_MEASUREMENT
+                and m_group[ev_idx[k2]] == group
+            ):
+                j = ev_idx[k2]
+                grp_state[k2 - k] = m_state[j]
+                grp_bias[k2 - k] = m_bias[j]
+                grp_z[k2 - k] = ev_val[k2]
+                grp_var[k2 - k] = m_var[j]
+                k2 += 1
+            m = k2 - k
+            accepted, nis = update_group_into(
+                x,
+                cov,
+                grp_state[:m],
+                grp_bias[:m],
+                grp_z[:m],
+                grp_var[:m],
+                gates[m - 1],
+                lower,
+                grp_innov[:m],
+                scratch,
+            )
+            for a in range(m):
+                ev_status[k + a] = STATUS_ACCEPTED if accepted else STATUS_GATED
+                ev_nis[k + a] = nis
+                ev_innov[k + a] = grp_innov[a]
+            k = k2
+        if k >= stop or ev_t[k] != te:
+            ensure_spd_into(cov, chol)
+            out_t[n_out] = te
+            for i in range(n):
+                out_x[n_out, i] = x[i]
+                out_var[n_out, i] = cov[i, i]
+            n_out += 1
+            if te >= snap_last + snap_every and n_snap < snap_pos.shape[0]:
+                snap_pos[n_snap] = k
+                snap_t[n_snap] = te
+                snap_x[n_snap, :] = x
+                snap_cov[n_snap, :, :] = cov
+                snap_u[n_snap, :] = u
+                n_snap += 1
+                snap_last = te
+    return t, n_out, n_snap, snap_last
+
+
+@dataclass(frozen=True)
+class MeasurementDef:
+    """One measured tag as the filter sees it.
+
+    Attributes
+    ----------
+    tag : str
+        Historian tag.
+    state : int
+        Index of the measured state.
+    bias : int
+        Index of its bias state, or -1.
+    variance : float
+        Reading variance R [(mol/m^3)^2].
+    dead_time : float
+        Reporting delay [s]: a reading stamped t was sampled at t - dead_time.
+    group : int
+        Readings of one group at one time are gated and applied together.
+    """
+
+    tag: str
+    state: int
+    bias: int
+    variance: float
+    dead_time: float
+    group: int
+
+
+@dataclass(frozen=True)
+class Refusal:
+    """A reading the filter refused, with the reason in words."""
+
+    tag: str
+    time: float
+    value: float
+    reason: str
+
+
+@dataclass
+class FilterRun:
+    """What one call of :meth:`CascadeFilter.add_readings` produced.
+
+    ``times`` (k,) [s], ``states`` (k, n) and ``std`` (k, n) are the estimates after
+    each distinct event time that was (re)run, oldest first: after a rewind they
+    revise earlier outputs. ``refused`` lists readings that were not taken.
+    ``events`` holds the (re)run span of the event log (see
+    :meth:`CascadeFilter.events`), so a caller can record gated readings.
+    """
+
+    times: FloatArray
+    states: FloatArray
+    std: FloatArray
+    refused: list[Refusal]
+    rewound_to: float | None = None
+    events: dict[str, np.ndarray] | None = None
+
+
+class CascadeFilter:
+    """EKF for one train with a bounded history for late and out-of-order readings.
+
+    Readings are (tag, time [s], value [SI]). Tags of the flow, the vessel
+    temperatures and (with feed model "input") the feed analyzers are inputs, held
+    from their time until the next reading; product and feed analyzers of the
+    "state" feed model are measurements, applied at their sample time
+    (time - dead_time).
+
+    The filter starts once every input tag has been read (or ``start_wait``
+    seconds of readings have gathered, using nominal values for inputs still
+    unread), at the earliest reading's time, from the design steady state at the
+    first inputs, with covariance diag(initial_std^2).
+    """
+
+    def __init__(
+        self,
+        model: TrainModel,
+        *,
+        snapshot_interval: float = 60.0,
+        start_wait: float = 900.0,
+    ) -> None:
+        self.model = model
+        cfg = model.config
+        lay = model.layout
+        self.horizon = cfg.estimator.horizon
+        self.snapshot_interval = snapshot_interval
+        self.start_wait = start_wait
+
+        self.inputs: dict[str, int] = {cfg.feed.flow.tag: 0}
+        for i, vessel in enumerate(cfg.vessels):
+            if not isinstance(vessel.temperature, float):
+                self.inputs[vessel.temperature.tag] = 1 + i
+        defs: list[MeasurementDef] = []
+        self.feed_tags: dict[str, int] = {}
+        for s, name in enumerate(cfg.species):
+            source = cfg.feed.composition.get(name)
+            if source is None or isinstance(source, float):
+                continue
+            self.feed_tags[source.tag] = s
+            if cfg.feed.model == "input":
+                self.inputs[source.tag] = 1 + lay.n_vessels + s
+            else:
+                assert source.std is not None  # enforced by the config checks
+                defs.append(
+                    MeasurementDef(
+                        source.tag,
+                        lay.feed[s],
+                        lay.bias.get(source.tag, -1),
+                        source.std**2,
+                        source.dead_time,
+                        len(defs),
+                    )
+                )
+        for meas in cfg.measurements:
+            state = lay.concentration(
+                cfg.vessel_index(meas.location), cfg.species_index(meas.species)
+            )
+            dead = meas.dead_time if meas.kind == "analyzer" else 0.0
+            defs.append(MeasurementDef(meas.tag, state, -1, meas.std**2, dead, len(defs)))
+        self.measurements: tuple[MeasurementDef, ...] = tuple(defs)
+        self._limits = self._physical_limits()
+        self.measurement_index = {d.tag: i for i, d in enumerate(defs)}
+
+        self._m_state = np.array([d.state for d in defs], dtype=np.int64)
+        self._m_bias = np.array([d.bias for d in defs], dtype=np.int64)
+        self._m_var = np.array([d.variance for d in defs], dtype=np.float64)
+        self._m_group = np.array([d.group for d in defs], dtype=np.int64)
+        prob = cfg.estimator.gate_probability
+        self._gates = np.array([chi2.ppf(prob, m) for m in range(1, _MAX_GROUP + 1)])
+        bounded = list(range(lay.n_concentrations))
+        if lay.activity >= 0:
+            bounded.append(lay.activity)
+        bounded += [i for i in lay.feed if i >= 0]
+        self._lower = np.array(sorted(bounded), dtype=np.int64)
+
+        self.initialized = False
+        self._pending: list[tuple[float, int, int, float]] = []
+        # Event log, sorted by (time, kind, index, value); positions index it.
+        self._ev_t = np.empty(0)
+        self._ev_kind = np.empty(0, dtype=np.int64)
+        self._ev_idx = np.empty(0, dtype=np.int64)
+        self._ev_val = np.empty(0)
+        self._ev_status = np.empty(0, dtype=np.int64)
+        self._ev_nis = np.empty(0)
+        self._ev_innov = np.empty(0)
+        # Snapshots: position in the log, time, state, covariance, inputs.
+        self._snap_pos = np.empty(0, dtype=np.int64)
+        self._snap_t = np.empty(0)
+        self._snap_x = np.empty((0, lay.n))
+        self._snap_cov = np.empty((0, lay.n, lay.n))
+        self._snap_u = np.empty((0, model.n_inputs))
+        # Current state after the whole log.
+        self.t = -math.inf
+        self.x = np.zeros(lay.n)
+        self.cov = np.zeros((lay.n, lay.n))
+        self.u = model.nominal_inputs()
+
+    # ------------------------------------------------------------------ readings
+
+    def classify(self, tag: str) -> tuple[int, int, float] | None:
+        """(kind, index, dead time [s]) of a tag, or None if the train has no such tag."""
+        if tag in self.inputs:
+            return KIND_INPUT, self.inputs[tag], 0.0
+        j = self.measurement_index.get(tag)
+        if j is None:
+            return None
+        return KIND_MEASUREMENT, j, self.measurements[j].dead_time
+
+    def add_readings(
+        self, tags: Sequence[str], times: Sequence[float], values: Sequence[float]
+    ) -> FilterRun:
+        """Take a batch of readings in any order and bring the estimate up to date.
+
+        Parameters
+        ----------
+        tags : sequence of str
+            Tag of each reading.
+        times : sequence of float
+            Reading time [s since the epoch]; for an analyzer with dead time, the
+            time it reported (the sample was taken dead_time earlier).
+        values : sequence of float
+            Value in SI units [m^3/s, K, mol/m^3].
+
+        Returns
+        -------
+        FilterRun
+            New and revised estimates, and the refused readings with reasons.
+        """
+        refused: list[Refusal] = []
+        events: list[tuple[float, int, int, float]] = []
+        oldest = self.t - self.horizon if self.initialized else -math.inf
+        base = float(self._snap_t[0]) if self._snap_t.size else -math.inf
+        for tag, time, value in zip(tags, times, values, strict=True):
+            time = float(time)
+            value = float(value)
+            info = self.classify(tag)
+            if info is None:
+                refused.append(Refusal(tag, time, value, "unknown tag for this train"))
+                continue
+            if not (math.isfinite(value) and math.isfinite(time)):
+                refused.append(Refusal(tag, time, value, "not a finite number"))
+                continue
+            kind, idx, dead = info
+            lo, hi, what = self._limits[tag]
+            if not lo <= value <= hi:
+                refused.append(Refusal(tag, time, value, what))
+                continue
+            sample_time = time - dead
+            if sample_time < oldest or sample_time < base:
+                refused.append(
+                    Refusal(
+                        tag,
+                        time,
+                        value,
+                        f"older than the history horizon ({self.horizon / 3600:g} h)",
+                    )
+                )
+                continue
+            events.append((sample_time, kind, idx, value))
+        if not self.initialized:
+            self._pending.extend(events)
+            if not self._try_start():
+                empty = np.empty((0, self.model.n_states))
+                return FilterRun(np.empty(0), empty, empty.copy(), refused)
+            run = self._run_from(0)
+            run.refused = refused
+            return run
+        if not events:
+            empty = np.empty((0, self.model.n_states))
+            return FilterRun(np.empty(0), empty, empty.copy(), refused)
+        first = self._merge(events)
+        if first >= len(self._ev_t):
+            empty = np.empty((0, self.model.n_states))
+            return FilterRun(np.empty(0), empty, empty.copy(), refused)
+        run = self._run_from(first)
+        run.refused = refused
+        self._trim()
+        return run
+
+    # ------------------------------------------------------------------ internals
+
+    def _physical_limits(self) -> dict[str, tuple[float, float, str]]:
+        """Per tag, the accepted value range [SI] and the reason given outside it."""
+        cfg = self.model.config
+        limits: dict[str, tuple[float, float, str]] = {}
+
+        def put(tag: str, lo: float, hi: float, what: str, rng: tuple[float, float] | None) -> None:
+            if rng is not None:
+                lo, hi = max(lo, rng[0]), min(hi, rng[1])
+                what = f"outside the tag's range [{rng[0]:g}, {rng[1]:g}] (SI units)"
+            limits[tag] = (lo, hi, what)
+
+        put(cfg.feed.flow.tag, 0.0, math.inf, "a flow cannot be negative", cfg.feed.flow.range)
+        for vessel in cfg.vessels:
+            if not isinstance(vessel.temperature, float):
+                what = "a temperature must be above absolute zero"
+                put(vessel.temperature.tag, 1e-6, math.inf, what, vessel.temperature.range)
+        for source in cfg.feed.composition.values():
+            if not isinstance(source, float):
+                # Analyzer noise can read slightly below zero; a gross negative is refused
+                # by the tag's range when one is configured.
+                put(source.tag, -math.inf, math.inf, "", source.range)
+        for meas in cfg.measurements:
+            put(meas.tag, -math.inf, math.inf, "", meas.range)
+        return limits
+
+    def _try_start(self) -> bool:
+        pending = sorted(set(self._pending))
+        seen = {(k, i) for (_, k, i, _) in pending}
+        needed = {(KIND_INPUT, i) for i in self.inputs.values()}
+        span = pending[-1][0] - pending[0][0] if pending else 0.0
+        if not (needed <= seen or span >= self.start_wait):
+            return False
+        lay = self.model.layout
+        u0 = self.model.nominal_inputs()
+        first_value: dict[tuple[int, int], float] = {}
+        for _, kind, idx, value in pending:
+            first_value.setdefault((kind, idx), value)
+        for (kind, idx), value in first_value.items():
+            if kind == KIND_INPUT:
+                u0[idx] = value
+        for tag, s in self.feed_tags.items():
+            j = self.measurement_index.get(tag)
+            if j is not None and (KIND_MEASUREMENT, j) in first_value:
+                u0[1 + lay.n_vessels + s] = first_value[(KIND_MEASUREMENT, j)]
+        t0 = pending[0][0]
+        self.x = self.model.steady_state(u0)
+        self.cov = np.diag(self.model.initial_std**2)
+        self.u = u0
+        self.t = t0
+        self._pending = []
+        self._set_log(pending)
+        self._snap_pos = np.array([0], dtype=np.int64)
+        self._snap_t = np.array([t0])
+        self._snap_x = self.x[None, :].copy()
+        self._snap_cov = self.cov[None, :, :].copy()
+        self._snap_u = self.u[None, :].copy()
+        self.initialized = True
+        return True
+
+    def _set_log(self, events: list[tuple[float, int, int, float]]) -> None:
+        arr = np.array(events, dtype=np.float64).reshape(-1, 4)
+        self._ev_t = arr[:, 0].copy()
+        self._ev_kind = arr[:, 1].astype(np.int64)
+        self._ev_idx = arr[:, 2].astype(np.int64)
+        self._ev_val = arr[:, 3].copy()
+        self._ev_status = np.full(len(arr), STATUS_PENDING, dtype=np.int64)
+        self._ev_nis = np.zeros(len(arr))
+        self._ev_innov = np.zeros(len(arr))
+
+    def _merge(self, events: list[tuple[float, int, int, float]]) -> int:
+        """Insert events into the log in canonical order; return the first changed position."""
+        new = np.array(sorted(events), dtype=np.float64).reshape(-1, 4)
+        n_old = len(self._ev_t)
+        if n_old == 0 or tuple(new[0]) > (
+            self._ev_t[-1],
+            self._ev_kind[-1],
+            self._ev_idx[-1],
+            self._ev_val[-1],
+        ):
+            # In-order arrival, the common case: append without re-sorting.
+            dup = np.zeros(len(new), dtype=bool)
+            dup[1:] = np.all(new[1:] == new[:-1], axis=1)
+            new = new[~dup]
+            self._ev_t = np.concatenate([self._ev_t, new[:, 0]])
+            self._ev_kind = np.concatenate([self._ev_kind, new[:, 1].astype(np.int64)])
+            self._ev_idx = np.concatenate([self._ev_idx, new[:, 2].astype(np.int64)])
+            self._ev_val = np.concatenate([self._ev_val, new[:, 3]])
+            self._ev_status = np.concatenate(
+                [self._ev_status, np.full(len(new), STATUS_PENDING, dtype=np.int64)]
+            )
+            self._ev_nis = np.concatenate([self._ev_nis, np.zeros(len(new))])
+            self._ev_innov = np.concatenate([self._ev_innov, np.zeros(len(new))])
+            return n_old
+        t = np.concatenate([self._ev_t, new[:, 0]])
+        kind = np.concatenate([self._ev_kind, new[:, 1].astype(np.int64)])
+        idx = np.concatenate([self._ev_idx, new[:, 2].astype(np.int64)])
+        val = np.concatenate([self._ev_val, new[:, 3]])
+        order = np.lexsort((val, idx, kind, t))
+        t, kind, idx, val = t[order], kind[order], idx[order], val[order]
+        # Exact repeats (same tag, time and value) are one reading.
+        keep = np.ones(len(t), dtype=bool)
+        keep[1:] = ~(
+            (t[1:] == t[:-1])
+            & (kind[1:] == kind[:-1])
+            & (idx[1:] == idx[:-1])
+            & (val[1:] == val[:-1])
+        )
+        old_count = len(self._ev_t)
+        is_new = order >= old_count
+        first_new = int(np.argmax(is_new & keep)) if np.any(is_new & keep) else len(t)
+        status = np.concatenate(
+            [self._ev_status, np.full(len(new), STATUS_PENDING, dtype=np.int64)]
+        )[order]
+        nis = np.concatenate([self._ev_nis, np.zeros(len(new))])[order]
+        innov = np.concatenate([self._ev_innov, np.zeros(len(new))])[order]
+        self._ev_t, self._ev_kind, self._ev_idx, self._ev_val = (
+            t[keep],
+            kind[keep],
+            idx[keep],
+            val[keep],
+        )
+        self._ev_status, self._ev_nis, self._ev_innov = status[keep], nis[keep], innov[keep]
+        # Positions before first_new are unchanged (every new event sorts at or after it).
+        return int(np.count_nonzero(keep[:first_new]))
+
+    def _run_from(self, position: int) -> FilterRun:
+        """Restore the last snapshot at or before ``position`` and run the log to its end."""
+        s = int(np.searchsorted(self._snap_pos, position, side="right")) - 1
+        s = max(s, 0)
+        rewound = None
+        start = int(self._snap_pos[s])
+        if start < len(self._ev_t) and self._snap_t[s] < self.t:
+            rewound = float(self._snap_t[s])
+        x = self._snap_x[s].copy()
+        cov = self._snap_cov[s].copy()
+        u = self._snap_u[s].copy()
+        t = float(self._snap_t[s])
+        keep = s + 1
+        stop = len(self._ev_t)
+        count = stop - start
+        n = self.model.n_states
+        out_t = np.empty(count)
+        out_x = np.empty((count, n))
+        out_var = np.empty((count, n))
+        span = (self._ev_t[stop - 1] - t) if count else 0.0
+        cap = int(span / self.snapshot_interval) + 2 if count else 0
+        snap_pos = np.empty(cap, dtype=np.int64)
+        snap_t = np.empty(cap)
+        snap_x = np.empty((cap, n))
+        snap_cov = np.empty((cap, n, n))
+        snap_u = np.empty((cap, self.model.n_inputs))
+        t, n_out, n_snap, _ = run_events(
+            x, cov, u, t,
+            self._ev_t, self._ev_kind, self._ev_idx, self._ev_val, start, stop,
+            self.model.ip, self.model.fp, self.model.process_noise,
+            self._m_state, self._m_bias, self._m_var, self._m_group, self._gates, self._lower,
+            self.snapshot_interval, float(self._snap_t[s]),
+            self._ev_status, self._ev_nis, self._ev_innov,
+            out_t, out_x, out_var,
+            snap_pos, snap_t, snap_x, snap_cov, snap_u,
+        )  # fmt: skip
+        self._snap_pos = np.concatenate([self._snap_pos[:keep], snap_pos[:n_snap]])
+        self._snap_t = np.concatenate([self._snap_t[:keep], snap_t[:n_snap]])
+        self._snap_x = np.concatenate([self._snap_x[:keep], snap_x[:n_snap]])
+        self._snap_cov = np.concatenate([self._snap_cov[:keep], snap_cov[:n_snap]])
+        self._snap_u = np.concatenate([self._snap_u[:keep], snap_u[:n_snap]])
+        self.x, self.cov, self.u, self.t = x, cov, u, max(t, self.t)
+        return FilterRun(
+            out_t[:n_out],
+            out_x[:n_out],
+            np.sqrt(np.maximum(out_var[:n_out], 0.0)),
+            [],
+            rewound,
+            self.events(start, stop),
+        )
+
+    def _trim(self) -> None:
+        """Forget snapshots and events older than the horizon (keeping one base snapshot)."""
+        limit = self.t - self.horizon
+        s = int(np.searchsorted(self._snap_t, limit, side="right")) - 1
+        if s <= 0 or s < len(self._snap_t) // 2:
+            return
+        cut = int(self._snap_pos[s])
+        self._snap_pos = self._snap_pos[s:] - cut
+        self._snap_t = self._snap_t[s:]
+        self._snap_x = self._snap_x[s:]
+        self._snap_cov = self._snap_cov[s:]
+        self._snap_u = self._snap_u[s:]
+        for name in (
+            "_ev_t",
+            "_ev_kind",
+            "_ev_idx",
+            "_ev_val",
+            "_ev_status",
+            "_ev_nis",
+            "_ev_innov",
+        ):
+            setattr(self, name, getattr(self, name)[cut:])
+
+    # ------------------------------------------------------------------ views
+
+    def events(self, start: int = 0, stop: int | None = None) -> dict[str, np.ndarray]:
+        """Return the retained event log (or positions start..stop-1) as named arrays.
+
+        Keys: time (sample time [s]), kind (0 input, 1 measurement), index (input
+        or measurement index), value [SI], status (see ``STATUS_*``), nis, innovation.
+        """
+        span = slice(start, stop)
+        return {
+            "time": self._ev_t[span].copy(),
+            "kind": self._ev_kind[span].copy(),
+            "index": self._ev_idx[span].copy(),
+            "value": self._ev_val[span].copy(),
+            "status": self._ev_status[span].copy(),
+            "nis": self._ev_nis[span].copy(),
+            "innovation": self._ev_innov[span].copy(),
+        }
+
+    def std(self) -> FloatArray:
+        """1-sigma of every state now, sqrt(diag P) [state units]."""
+        return np.sqrt(np.maximum(np.diag(self.cov), 0.0))
+
+
+__all__ = [
+    "CascadeFilter",
+    "FilterRun",
+    "MeasurementDef",
+    "Refusal",
+    "ensure_spd",
+    "joseph_update",
+    "project_bounds",
+    "run_events",
+    "update_group",
+]
