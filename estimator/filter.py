@@ -342,7 +342,7 @@ def run_events(
     n_out = 0
     n_snap = 0
     k = start
-    work, iwork = workspace(n, ip[IP_N] * ip[IP_S])
+    ws = workspace(n, ip[IP_N] * ip[IP_S])
     noise_matrix = np.diag(noise)
     scratch = np.empty(3 * n)
     chol = np.empty((n, n))
@@ -354,7 +354,7 @@ def run_events(
     while k < stop:
         te = ev_t[k]
         if te > t:
-            propagate_into(x, cov, u, te - t, ip, fp, noise_matrix, work, iwork)
+            propagate_into(x, cov, u, te - t, ip, fp, noise_matrix, ws)
             t = te
         if ev_kind[k] == KIND_INPUT:
             u[ev_idx[k]] = ev_val[k]

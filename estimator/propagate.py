@@ -51,24 +51,43 @@ _THETA_5 = 2.539398330063230e-1
 _TINY_NOISE = 2.0**-27
 _MAX_TERMS = 40
 
+Workspace = tuple[
+    FloatArray, FloatArray, FloatArray, FloatArray, FloatArray, FloatArray, FloatArray,
+    FloatArray, IntArray, IntArray, IntArray,
+    FloatArray, FloatArray, FloatArray, FloatArray, FloatArray, FloatArray, FloatArray,
+]  # fmt: skip
+
 
 @numba.njit(cache=True, error_model="numpy")
-def workspace(n: int, n_dyn: int) -> tuple[FloatArray, IntArray]:
-    """Scratch buffers for :func:`discretize_into` and :func:`propagate_into`.
+def workspace(n: int, n_dyn: int) -> Workspace:
+    """Scratch arrays for :func:`discretize_into` and :func:`propagate_into`.
 
-    The filter loop allocates them once and reuses them at every step. Layout:
-    discretize's A, E, term, next term, V, Q, Y and non-zero values, with one
-    spare block, then propagate's J, Phi, Qd, a product, the forcing, g and x.
+    The filter loop allocates them once and reuses them at every step (2-D views
+    cut from one buffer cost more than the arithmetic of a small step).
+    Order: A, E, A^2, A^4, V, Q, Y, the non-zeros' values, rows, columns and
+    dynamic-column positions; then J, Phi, Qd, a product, the forcing, g and x.
     """
     m = n + 1
-    size = 4 * n_dyn * m + m * m + 6 * n * n + 2 * n_dyn * n + 3 * n
-    return np.zeros(size), np.zeros(3 * n_dyn * n, dtype=np.int64)
-
-
-@numba.njit(cache=True, error_model="numpy")
-def _take(work: FloatArray, offset: int, rows: int, cols: int) -> tuple[FloatArray, int]:
-    end = offset + rows * cols
-    return work[offset:end].reshape((rows, cols)), end
+    return (
+        np.zeros((n_dyn, m)),
+        np.zeros((m, m)),
+        np.zeros((n_dyn, m)),
+        np.zeros((n_dyn, m)),
+        np.zeros((n, n)),
+        np.zeros((n, n)),
+        np.zeros((n_dyn, n)),
+        np.zeros(n_dyn * n),
+        np.zeros(n_dyn * n, dtype=np.int64),
+        np.zeros(n_dyn * n, dtype=np.int64),
+        np.zeros(n_dyn * n, dtype=np.int64),
+        np.zeros((n, n)),
+        np.zeros((n, n)),
+        np.zeros((n, n)),
+        np.zeros((n, n)),
+        np.zeros(n),
+        np.zeros(n),
+        np.zeros(n),
+    )
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -111,23 +130,28 @@ def _noise_term(
         val = nz_v[t]
         for j in range(n):
             y[i, j] += val * v[r, j]
+    # V_k = (Y + Y^T) / k with Y's rows beyond n_dyn zero, so V_k's random-walk
+    # block stays zero; Q is accumulated on its lower triangle only.
     inv_k = 1.0 / k
     scale = h / (k + 1)
     size = 0.0
-    for i in range(n):
+    for i in range(n_dyn):
         for j in range(i + 1):
-            s = 0.0
-            if i < n_dyn:
-                s += y[i, j]
-            if j < n_dyn:
-                s += y[j, i]
-            s *= inv_k
+            s = (y[i, j] + y[j, i]) * inv_k
             v[i, j] = s
             v[j, i] = s
             q[i, j] += s * scale
-            if i != j:
-                q[j, i] += s * scale
             size = max(size, abs(s))
+    for i in range(n_dyn, n):
+        for j in range(n_dyn):
+            s = y[j, i] * inv_k
+            v[i, j] = s
+            v[j, i] = s
+            q[i, j] += s * scale
+            size = max(size, abs(s))
+        for j in range(n_dyn, i + 1):
+            v[i, j] = 0.0
+            v[j, i] = 0.0
     return size * scale
 
 
@@ -161,13 +185,11 @@ def discretize_into(
     phi: FloatArray,
     g: FloatArray,
     qd: FloatArray,
-    work: FloatArray,
-    iwork: IntArray,
+    ws: Workspace,
 ) -> None:
     """:func:`discretize` into ``phi`` (n, n), ``g`` (n,) and ``qd`` (n, n).
 
-    ``work`` and ``iwork`` come from :func:`workspace` and must not overlap the
-    inputs or outputs.
+    ``ws`` comes from :func:`workspace`; its first eleven arrays are used here.
     """
     n = jac.shape[0]
     m = n + 1
@@ -181,18 +203,7 @@ def discretize_into(
     h = dt / 2.0**squarings
     norm_h = norm / 2.0**squarings
 
-    off = 0
-    a, off = _take(work, off, n_dyn, m)
-    e, off = _take(work, off, m, m)
-    p2, off = _take(work, off, n_dyn, m)
-    p4, off = _take(work, off, n_dyn, m)
-    v, off = _take(work, off, n, n)
-    q, off = _take(work, off, n, n)
-    y, off = _take(work, off, n_dyn, n)
-    nz_v = work[off : off + n_dyn * n]
-    nz_i = iwork[: n_dyn * n]
-    nz_r = iwork[n_dyn * n : 2 * n_dyn * n]
-    dyn = iwork[2 * n_dyn * n : 3 * n_dyn * n]
+    a, e, p2, p4, v, q, y, nz_v, nz_i, nz_r, dyn = ws[:11]
 
     # Augmented A = [J c; 0 0] h; rows at and beyond n_dyn are zero. Its non-zeros
     # are listed once; products with A need only those in the dynamic columns.
@@ -295,6 +306,9 @@ def discretize_into(
             if size <= _TINY_NOISE * q_scale:
                 break
 
+    for i in range(n):
+        for j in range(i):
+            q[j, i] = q[i, j]
     if squarings > 0:
         # Long or stiff intervals: allocating products are fine on this path.
         ee = e.copy()
@@ -309,7 +323,9 @@ def discretize_into(
         g[i] = e[i, n]
         for j in range(n):
             phi[i, j] = e[i, j]
-            qd[i, j] = 0.5 * (q[i, j] + q[j, i])
+        for j in range(i + 1):
+            qd[i, j] = q[i, j]
+            qd[j, i] = q[i, j]
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -341,11 +357,10 @@ def discretize(
         int_0^dt exp(J s) W exp(J s)^T ds [state unit^2], to 1e-8 relative.
     """
     n = jac.shape[0]
-    work, iwork = workspace(n, n_dyn)
     phi = np.empty((n, n))
     g = np.empty(n)
     qd = np.empty((n, n))
-    discretize_into(jac, forcing, noise, dt, n_dyn, phi, g, qd, work, iwork)
+    discretize_into(jac, forcing, noise, dt, n_dyn, phi, g, qd, workspace(n, n_dyn))
     return phi, g, qd
 
 
@@ -413,30 +428,21 @@ def propagate_into(
     ip: IntArray,
     fp: FloatArray,
     noise: FloatArray,
-    work: FloatArray,
-    iwork: IntArray,
+    ws: Workspace,
 ) -> None:
     """:func:`propagate` in place on ``x`` and ``cov``, without allocating.
 
-    ``noise`` is the full intensity matrix W (n, n); ``work``/``iwork`` come from
+    ``noise`` is the full intensity matrix W (n, n); ``ws`` comes from
     :func:`workspace`.
     """
     if dt <= 0.0:
         return
     n = x.shape[0]
     n_dyn = ip[IP_N] * ip[IP_S]
-    m = n + 1
-    off = 4 * n_dyn * m + m * m + 2 * n * n + 2 * n_dyn * n  # past discretize's scratch
-    jac, off = _take(work, off, n, n)
-    phi, off = _take(work, off, n, n)
-    qd, off = _take(work, off, n, n)
-    tmp, off = _take(work, off, n, n)
-    forcing = work[off : off + n]
-    g = work[off + n : off + 2 * n]
-    x_new = work[off + 2 * n : off + 3 * n]
+    jac, phi, qd, tmp, forcing, g, x_new = ws[11:]
     jacobian_into(0.0, x, u, ip, fp, jac)
     affine_input_into(u, ip, fp, forcing)
-    discretize_into(jac, forcing, noise, dt, n_dyn, phi, g, qd, work, iwork)
+    discretize_into(jac, forcing, noise, dt, n_dyn, phi, g, qd, ws)
     _advance_into(x, phi, g, ip, x_new)
     for i in range(n):
         x[i] = x_new[i]
@@ -476,10 +482,10 @@ def propagate(
         ``x(t + dt)`` exact for the held inputs (to round-off) and
         ``Phi P Phi^T + Qd``.
     """
-    work, iwork = workspace(x.shape[0], ip[IP_N] * ip[IP_S])
+    ws = workspace(x.shape[0], ip[IP_N] * ip[IP_S])
     x_next = x.copy()
     cov_next = cov.copy()
-    propagate_into(x_next, cov_next, u, dt, ip, fp, np.diag(noise), work, iwork)
+    propagate_into(x_next, cov_next, u, dt, ip, fp, np.diag(noise), ws)
     return x_next, cov_next
 
 
