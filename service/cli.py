@@ -88,6 +88,11 @@ def check(
     train : pathlib.Path
         The train's TOML file.
 
+    Then the observability report at the nominal operating point: which states
+    the configured measurements cannot determine, and what to measure instead. An
+    unobservable train is a warning, not an error (exit 0): its other states are
+    still estimated.
+
     Raises
     ------
     typer.Exit
@@ -113,10 +118,14 @@ def check(
         f"{len(config.species)} species"
     )
 
+    from estimator.model import TrainModel
+    from estimator.observability import observability_report
 
-# --- demo: implemented by the lead in service/demo.py --------------------------------------
-# Keep this command's name and options; the scenario, the simulation and the table
-# printed beside the truth all live in service.demo.run_demo.
+    report = observability_report(TrainModel.from_config(config))
+    prefix = "observability" if report.observable else "warning"
+    typer.echo(f"{prefix}: {report.message()}")
+
+
 @app.command(help="Simulate a short invented scenario, estimate it, print estimates beside truth.")
 def demo(
     seed: Annotated[int, typer.Option(help="Random seed for the simulated plant noise.")] = 7,
