@@ -204,7 +204,9 @@ def jacobian_into(
     i_act = ip[IP_ACTIVITY]
     flow = u[0]
     activity = _activity(x, ip, fp)
-    jac[:, :] = 0.0
+    for i in range(jac.shape[0]):
+        for j in range(jac.shape[1]):
+            jac[i, j] = 0.0
     for i in range(n_vessels):
         dilution = flow / fp[FP_VOLUME + i]
         base = i * n_species

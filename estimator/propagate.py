@@ -165,7 +165,9 @@ def _sparse_product(
     ``x`` and ``out`` hold the first ``n_dyn`` rows (A's other rows are zero, so
     only x's first n_dyn rows meet a non-zero).
     """
-    out[:, :] = 0.0
+    for i in range(out.shape[0]):
+        for j in range(out.shape[1]):
+            out[i, j] = 0.0
     for td in range(count_dyn):
         t = dyn[td]
         i = nz_i[t]
