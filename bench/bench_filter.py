@@ -146,9 +146,12 @@ def main() -> None:
             x, cov, u, 0.0, ev_t, ev_kind, ev_idx, ev_val, 0, 2 * STEPS,
             model.ip, model.fp, model.process_noise,
             filt._m_state, filt._m_bias, filt._m_var, filt._m_group, filt._gates, filt._lower,
-            1e30, 0.0, status, nis, innov, out_t, out_x, out_v,
+            0, np.zeros(len(filt.measurements), dtype=np.int64), 1e30, 0.0,
+            status, nis, innov, out_t, out_x, out_v,
+            np.empty((STEPS, 2 * model.layout.n_vessels)), np.empty((STEPS, model.n_inputs)),
             np.empty(cap, dtype=np.int64), np.empty(cap), np.empty((cap, n)),
             np.empty((cap, n, n)), np.empty((cap, model.n_inputs)),
+            np.empty((cap, len(filt.measurements)), dtype=np.int64),
         )  # fmt: skip
         return time.perf_counter() - t0, out_x, status
 

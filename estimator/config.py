@@ -30,7 +30,9 @@ from pydantic import (
     BeforeValidator,
     ConfigDict,
     Discriminator,
+    Field,
     StrictBool,
+    StrictInt,
     Tag,
     ValidationError,
     ValidationInfo,
@@ -610,6 +612,11 @@ class EstimatorConfig(BaseModel):
         of the chi-square distribution is rejected [-]; in (0.5, 1).
     horizon : float
         How far back late readings are still applied; older ones are refused [s].
+    step_persistence : int
+        After this many consecutive gated readings of one analyzer, all on the same
+        side of the prediction, the filter takes them as a real step (a feed change,
+        say), not a spike: it widens the measured state's uncertainty and accepts
+        the next one [-]; 0 turns this off.
     concentration_noise, activity_noise, feed_noise, bias_noise : RandomWalk
         Process noise of each kind of state.
     initial_std : InitialStd
@@ -622,6 +629,7 @@ class EstimatorConfig(BaseModel):
     design_activity: Annotated[float, quantity("dimensionless", gt=0.0)] = 1.0
     gate_probability: Annotated[float, quantity("dimensionless", gt=0.5, lt=1.0)] = 0.999
     horizon: Annotated[float, quantity("time", gt=0.0)] = 6 * _HOUR
+    step_persistence: Annotated[StrictInt, Field(ge=0, le=1000)] = 3
     concentration_noise: ConcentrationWalk = ConcentrationWalk(sigma=5.0, per=_HOUR)
     activity_noise: RandomWalk = RandomWalk(sigma=0.01, per=_HOUR)
     feed_noise: ConcentrationWalk = ConcentrationWalk(sigma=30.0, per=_HOUR)

@@ -39,13 +39,22 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numba
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy.stats import chi2
 
-from estimator.model import IP_N, IP_S, FloatArray, IntArray, TrainModel
+from estimator.model import (
+    IP_FEED,
+    IP_N,
+    IP_REACTANT,
+    IP_S,
+    FloatArray,
+    IntArray,
+    TrainModel,
+)
 from estimator.propagate import propagate_into, workspace
 
 KIND_INPUT = 0
@@ -55,6 +64,7 @@ STATUS_PENDING = -1
 STATUS_INPUT = 0
 STATUS_ACCEPTED = 1
 STATUS_GATED = 2
+STATUS_STEP = 3  # accepted as a real step after persistent gating
 
 _MAX_GROUP = 8
 
@@ -294,6 +304,61 @@ def update_group_into(
 
 
 @numba.njit(cache=True, error_model="numpy")
+def _widen_for(
+    x: FloatArray,
+    cov: FloatArray,
+    i_state: IntArray,
+    i_bias: IntArray,
+    z: FloatArray,
+    var: FloatArray,
+) -> None:
+    """Add to each measured state's variance what its reading's innovation exceeds.
+
+    For reading a, ``P[i, i] += max(nu_a^2 - S_aa, 0)``: afterwards each reading of
+    the group lies about one sigma from the prediction.
+    """
+    for a in range(z.shape[0]):
+        i = i_state[a]
+        b = i_bias[a]
+        nu = z[a] - x[i] - (x[b] if b >= 0 else 0.0)
+        s = cov[i, i] + var[a]
+        if b >= 0:
+            s += 2.0 * cov[i, b] + cov[b, b]
+        cov[i, i] += max(nu * nu - s, 0.0)
+
+
+@numba.njit(cache=True, error_model="numpy")
+def conversion_into(
+    x: FloatArray, cov: FloatArray, u: FloatArray, ip: IntArray, out: FloatArray
+) -> None:
+    """Each vessel's reactant conversion and its variance, into ``out`` (2N,).
+
+    ``X_i = 1 - C_A,i / C_A,feed`` with the feed concentration from its state (then
+    its uncertainty counts) or from the inputs; the variance is ``g^T P g`` for the
+    gradient g of X_i (first-order propagation). With no reactant in the feed the
+    conversion is undefined and reported as 0 with variance 0.
+    """
+    n_vessels = ip[IP_N]
+    n_species = ip[IP_S]
+    ia = ip[IP_REACTANT]
+    i_feed = ip[IP_FEED + ia]
+    feed = x[i_feed] if i_feed >= 0 else u[1 + n_vessels + ia]
+    for i in range(n_vessels):
+        if feed <= 0.0:
+            out[i] = 0.0
+            out[n_vessels + i] = 0.0
+            continue
+        j = i * n_species + ia
+        out[i] = 1.0 - x[j] / feed
+        d_c = -1.0 / feed
+        var = d_c * d_c * cov[j, j]
+        if i_feed >= 0:
+            d_f = x[j] / (feed * feed)
+            var += 2.0 * d_c * d_f * cov[j, i_feed] + d_f * d_f * cov[i_feed, i_feed]
+        out[n_vessels + i] = max(var, 0.0)
+
+
+@numba.njit(cache=True, error_model="numpy")
 def run_events(
     x: FloatArray,
     cov: FloatArray,
@@ -314,6 +379,8 @@ def run_events(
     m_group: IntArray,
     gates: FloatArray,
     lower: IntArray,
+    persist: int,
+    streak: IntArray,
     snap_every: float,
     snap_last: float,
     ev_status: IntArray,
@@ -322,19 +389,29 @@ def run_events(
     out_t: FloatArray,
     out_x: FloatArray,
     out_var: FloatArray,
+    out_conv: FloatArray,
+    out_u: FloatArray,
     snap_pos: IntArray,
     snap_t: FloatArray,
     snap_x: FloatArray,
     snap_cov: FloatArray,
     snap_u: FloatArray,
+    snap_streak: IntArray,
 ) -> tuple[float, int, int, float]:
     """Run the filter over events ``start..stop-1`` of a time-ordered log.
 
     ``x``, ``cov`` and ``u`` are updated in place. Per event it writes the status,
     NIS and innovation; per distinct event time it writes one output row (time,
-    state, variances); after a time whose events are done, and at least
+    state, variances, each vessel's conversion and its variance, inputs); after a
+    time whose events are done, and at least
     ``snap_every`` seconds after the last snapshot, it writes a snapshot whose
     ``snap_pos`` is the index of the next event to run.
+
+    ``streak`` (one per measurement group) counts consecutive gated updates,
+    signed by the side of the prediction they fell on. When ``persist`` of them
+    fall on one side (``persist`` > 0), the next is taken as a real step: the
+    measured states' variances are widened until its NIS is 1 and it is applied
+    (status ``STATUS_STEP``). Spikes come alone and stay gated.
 
     Returns (time reached, output rows written, snapshots written, last snapshot time).
     """
@@ -379,6 +456,13 @@ def run_events(
                 grp_var[k2 - k] = m_var[j]
                 k2 += 1
             m = k2 - k
+            gate = gates[m - 1]
+            run = streak[group]
+            if persist > 0 and abs(run) >= persist:
+                # A step, not a spike: widen the prior so that this reading sits at
+                # NIS = 1, then apply it.
+                _widen_for(x, cov, grp_state[:m], grp_bias[:m], grp_z[:m], grp_var[:m])
+                gate = np.inf
             accepted, nis = update_group_into(
                 x,
                 cov,
@@ -386,13 +470,20 @@ def run_events(
                 grp_bias[:m],
                 grp_z[:m],
                 grp_var[:m],
-                gates[m - 1],
+                gate,
                 lower,
                 grp_innov[:m],
                 scratch,
             )
+            status = STATUS_GATED
+            if accepted:
+                status = STATUS_STEP if gate == np.inf else STATUS_ACCEPTED
+                streak[group] = 0
+            else:
+                side = 1 if grp_innov[0] > 0.0 else -1
+                streak[group] = run + side if run * side > 0 else side
             for a in range(m):
-                ev_status[k + a] = STATUS_ACCEPTED if accepted else STATUS_GATED
+                ev_status[k + a] = status
                 ev_nis[k + a] = nis
                 ev_innov[k + a] = grp_innov[a]
             k = k2
@@ -402,6 +493,9 @@ def run_events(
             for i in range(n):
                 out_x[n_out, i] = x[i]
                 out_var[n_out, i] = cov[i, i]
+            for i in range(u.shape[0]):
+                out_u[n_out, i] = u[i]
+            conversion_into(x, cov, u, ip, out_conv[n_out])
             n_out += 1
             if te >= snap_last + snap_every and n_snap < snap_pos.shape[0]:
                 snap_pos[n_snap] = k
@@ -409,6 +503,7 @@ def run_events(
                 snap_x[n_snap, :] = x
                 snap_cov[n_snap, :, :] = cov
                 snap_u[n_snap, :] = u
+                snap_streak[n_snap, :] = streak
                 n_snap += 1
                 snap_last = te
     return t, n_out, n_snap, snap_last
@@ -458,17 +553,37 @@ class FilterRun:
 
     ``times`` (k,) [s], ``states`` (k, n) and ``std`` (k, n) are the estimates after
     each distinct event time that was (re)run, oldest first: after a rewind they
-    revise earlier outputs. ``refused`` lists readings that were not taken.
-    ``events`` holds the (re)run span of the event log (see
-    :meth:`CascadeFilter.events`), so a caller can record gated readings.
+    revise earlier outputs from ``rewound_to`` on. ``conversion`` and
+    ``conversion_std`` (k, N) are each vessel's reactant conversion [-] and its
+    1-sigma; ``inputs`` (k, 1 + N + S) the inputs held at each time.
+    ``refused`` lists readings that were not taken. ``events`` holds the (re)run
+    span of the event log (see :meth:`CascadeFilter.events`), so a caller can record
+    gated readings.
     """
 
     times: FloatArray
     states: FloatArray
     std: FloatArray
-    refused: list[Refusal]
+    conversion: FloatArray
+    conversion_std: FloatArray
+    inputs: FloatArray
+    refused: list[Refusal] = field(default_factory=list)
     rewound_to: float | None = None
     events: dict[str, np.ndarray] | None = None
+
+    @classmethod
+    def empty(cls, model: TrainModel, refused: list[Refusal]) -> FilterRun:
+        """Return a run that produced no estimate."""
+        n, n_v = model.n_states, model.layout.n_vessels
+        return cls(
+            np.empty(0),
+            np.empty((0, n)),
+            np.empty((0, n)),
+            np.empty((0, n_v)),
+            np.empty((0, n_v)),
+            np.empty((0, model.n_inputs)),
+            refused,
+        )
 
 
 class CascadeFilter:
@@ -532,8 +647,22 @@ class CascadeFilter:
             dead = meas.dead_time if meas.kind == "analyzer" else 0.0
             defs.append(MeasurementDef(meas.tag, state, -1, meas.std**2, dead, len(defs)))
         self.measurements: tuple[MeasurementDef, ...] = tuple(defs)
-        self._limits = self._physical_limits()
         self.measurement_index = {d.tag: i for i, d in enumerate(defs)}
+
+        # Per tag code: event kind and index, dead time, accepted range and its reason.
+        limits = self._physical_limits()
+        self.tag_names: tuple[str, ...] = tuple(limits)
+        self.tag_code = {tag: code for code, tag in enumerate(self.tag_names)}
+        info = [self.classify(tag) for tag in self.tag_names]
+        self._kind_of = np.array([i[0] for i in info if i is not None], dtype=np.int64)
+        self._index_of = np.array([i[1] for i in info if i is not None], dtype=np.int64)
+        self._dead_of = np.array([i[2] for i in info if i is not None])
+        self._lo_of = np.array([limits[t][0] for t in self.tag_names])
+        self._hi_of = np.array([limits[t][1] for t in self.tag_names])
+        self._range_reason = [limits[t][2] for t in self.tag_names]
+        # Tag code of each (kind, index), to name events.
+        pairs = zip(self._kind_of.tolist(), self._index_of.tolist(), strict=True)
+        self._code_of_event = {pair: code for code, pair in enumerate(pairs)}
 
         self._m_state = np.array([d.state for d in defs], dtype=np.int64)
         self._m_bias = np.array([d.bias for d in defs], dtype=np.int64)
@@ -548,7 +677,7 @@ class CascadeFilter:
         self._lower = np.array(sorted(bounded), dtype=np.int64)
 
         self.initialized = False
-        self._pending: list[tuple[float, int, int, float]] = []
+        self._pending = np.empty((0, 4))
         # Event log, sorted by (time, kind, index, value); positions index it.
         self._ev_t = np.empty(0)
         self._ev_kind = np.empty(0, dtype=np.int64)
@@ -563,6 +692,8 @@ class CascadeFilter:
         self._snap_x = np.empty((0, lay.n))
         self._snap_cov = np.empty((0, lay.n, lay.n))
         self._snap_u = np.empty((0, model.n_inputs))
+        self._snap_streak = np.empty((0, len(defs)), dtype=np.int64)
+        self._persist = cfg.estimator.step_persistence
         # Current state after the whole log.
         self.t = -math.inf
         self.x = np.zeros(lay.n)
@@ -580,19 +711,21 @@ class CascadeFilter:
             return None
         return KIND_MEASUREMENT, j, self.measurements[j].dead_time
 
-    def add_readings(
-        self, tags: Sequence[str], times: Sequence[float], values: Sequence[float]
-    ) -> FilterRun:
+    def event_tag(self, kind: int, index: int) -> str:
+        """Return the tag of an event in the log (kind and index as in :meth:`events`)."""
+        return self.tag_names[self._code_of_event[(int(kind), int(index))]]
+
+    def add_readings(self, tags: Sequence[str], times: ArrayLike, values: ArrayLike) -> FilterRun:
         """Take a batch of readings in any order and bring the estimate up to date.
 
         Parameters
         ----------
         tags : sequence of str
             Tag of each reading.
-        times : sequence of float
+        times : array_like of float
             Reading time [s since the epoch]; for an analyzer with dead time, the
             time it reported (the sample was taken dead_time earlier).
-        values : sequence of float
+        values : array_like of float
             Value in SI units [m^3/s, K, mol/m^3].
 
         Returns
@@ -600,55 +733,70 @@ class CascadeFilter:
         FilterRun
             New and revised estimates, and the refused readings with reasons.
         """
-        refused: list[Refusal] = []
-        events: list[tuple[float, int, int, float]] = []
+        codes = np.array([self.tag_code.get(tag, -1) for tag in tags], dtype=np.int64)
+        return self.add_columns(codes, times, values, names=tags)
+
+    def add_columns(
+        self,
+        codes: ArrayLike,
+        times: ArrayLike,
+        values: ArrayLike,
+        names: Sequence[str] | None = None,
+    ) -> FilterRun:
+        """:meth:`add_readings` for tags given as codes (indices into ``tag_names``).
+
+        The vectorised entry for archives and batches: per reading work happens in
+        numpy, and Python objects are made only for refused readings. A code of -1
+        (or out of range) is an unknown tag; ``names``, when given, names it.
+        """
+        code = np.asarray(codes, dtype=np.int64)
+        t = np.asarray(times, dtype=np.float64)
+        v = np.asarray(values, dtype=np.float64)
+        if not code.shape == t.shape == v.shape:
+            raise ValueError("codes, times and values must have the same length")
+        known = (code >= 0) & (code < len(self.tag_names))
+        safe = np.where(known, code, 0)
+        finite = np.isfinite(t) & np.isfinite(v)
+        in_range = (v >= self._lo_of[safe]) & (v <= self._hi_of[safe])
+        sample = t - self._dead_of[safe]
         oldest = self.t - self.horizon if self.initialized else -math.inf
-        base = float(self._snap_t[0]) if self._snap_t.size else -math.inf
-        for tag, time, value in zip(tags, times, values, strict=True):
-            time = float(time)
-            value = float(value)
-            info = self.classify(tag)
-            if info is None:
-                refused.append(Refusal(tag, time, value, "unknown tag for this train"))
-                continue
-            if not (math.isfinite(value) and math.isfinite(time)):
-                refused.append(Refusal(tag, time, value, "not a finite number"))
-                continue
-            kind, idx, dead = info
-            lo, hi, what = self._limits[tag]
-            if not lo <= value <= hi:
-                refused.append(Refusal(tag, time, value, what))
-                continue
-            sample_time = time - dead
-            if sample_time < oldest or sample_time < base:
-                refused.append(
-                    Refusal(
-                        tag,
-                        time,
-                        value,
-                        f"older than the history horizon ({self.horizon / 3600:g} h)",
-                    )
-                )
-                continue
-            events.append((sample_time, kind, idx, value))
+        if self._snap_t.size:
+            oldest = max(oldest, float(self._snap_t[0]))
+        fresh = sample >= oldest
+        take = known & finite & in_range & fresh
+        refused: list[Refusal] = []
+        if not np.all(take):
+            horizon = f"older than the history horizon ({self.horizon / 3600:g} h)"
+            for i in np.flatnonzero(~take).tolist():
+                name = names[i] if names is not None else (
+                    self.tag_names[code[i]] if known[i] else f"code {code[i]}"
+                )  # fmt: skip
+                if not known[i]:
+                    reason = "unknown tag for this train"
+                elif not finite[i]:
+                    reason = "not a finite number"
+                elif not in_range[i]:
+                    reason = self._range_reason[code[i]]
+                else:
+                    reason = horizon
+                refused.append(Refusal(name, float(t[i]), float(v[i]), reason))
+        events = np.column_stack(
+            [sample[take], self._kind_of[code[take]], self._index_of[code[take]], v[take]]
+        ).astype(np.float64)
         if not self.initialized:
-            self._pending.extend(events)
+            self._pending = np.vstack([self._pending, events])
             if not self._try_start():
-                empty = np.empty((0, self.model.n_states))
-                return FilterRun(np.empty(0), empty, empty.copy(), refused)
+                return FilterRun.empty(self.model, refused)
             run = self._run_from(0)
-            run.refused = refused
-            return run
-        if not events:
-            empty = np.empty((0, self.model.n_states))
-            return FilterRun(np.empty(0), empty, empty.copy(), refused)
-        first = self._merge(events)
-        if first >= len(self._ev_t):
-            empty = np.empty((0, self.model.n_states))
-            return FilterRun(np.empty(0), empty, empty.copy(), refused)
-        run = self._run_from(first)
+        else:
+            if len(events) == 0:
+                return FilterRun.empty(self.model, refused)
+            first = self._merge(events)
+            if first >= len(self._ev_t):
+                return FilterRun.empty(self.model, refused)
+            run = self._run_from(first)
+            self._trim()
         run.refused = refused
-        self._trim()
         return run
 
     # ------------------------------------------------------------------ internals
@@ -679,52 +827,56 @@ class CascadeFilter:
         return limits
 
     def _try_start(self) -> bool:
-        pending = sorted(set(self._pending))
-        seen = {(k, i) for (_, k, i, _) in pending}
-        needed = {(KIND_INPUT, i) for i in self.inputs.values()}
-        span = pending[-1][0] - pending[0][0] if pending else 0.0
-        if not (needed <= seen or span >= self.start_wait):
+        pending = _sorted_unique(self._pending)
+        needed = sorted(self.inputs.values())
+        is_input = pending[:, 1] == KIND_INPUT
+        seen = set(pending[is_input, 2].astype(int).tolist())
+        span = pending[-1, 0] - pending[0, 0] if len(pending) else 0.0
+        if len(pending) == 0 or not (set(needed) <= seen or span >= self.start_wait):
+            self._pending = pending
             return False
         lay = self.model.layout
         u0 = self.model.nominal_inputs()
-        first_value: dict[tuple[int, int], float] = {}
-        for _, kind, idx, value in pending:
-            first_value.setdefault((kind, idx), value)
-        for (kind, idx), value in first_value.items():
-            if kind == KIND_INPUT:
-                u0[idx] = value
+        # The first reading of each input (pending is in time order) starts it.
+        for idx in needed:
+            rows = np.flatnonzero(is_input & (pending[:, 2] == idx))
+            if rows.size:
+                u0[idx] = pending[rows[0], 3]
         for tag, s in self.feed_tags.items():
             j = self.measurement_index.get(tag)
-            if j is not None and (KIND_MEASUREMENT, j) in first_value:
-                u0[1 + lay.n_vessels + s] = first_value[(KIND_MEASUREMENT, j)]
-        t0 = pending[0][0]
+            if j is None:
+                continue
+            rows = np.flatnonzero((pending[:, 1] == KIND_MEASUREMENT) & (pending[:, 2] == j))
+            if rows.size:
+                u0[1 + lay.n_vessels + s] = pending[rows[0], 3]
+        t0 = float(pending[0, 0])
         self.x = self.model.steady_state(u0)
         self.cov = np.diag(self.model.initial_std**2)
         self.u = u0
         self.t = t0
-        self._pending = []
+        self._pending = np.empty((0, 4))
         self._set_log(pending)
         self._snap_pos = np.array([0], dtype=np.int64)
         self._snap_t = np.array([t0])
         self._snap_x = self.x[None, :].copy()
         self._snap_cov = self.cov[None, :, :].copy()
         self._snap_u = self.u[None, :].copy()
+        self._snap_streak = np.zeros((1, len(self.measurements)), dtype=np.int64)
         self.initialized = True
         return True
 
-    def _set_log(self, events: list[tuple[float, int, int, float]]) -> None:
-        arr = np.array(events, dtype=np.float64).reshape(-1, 4)
-        self._ev_t = arr[:, 0].copy()
-        self._ev_kind = arr[:, 1].astype(np.int64)
-        self._ev_idx = arr[:, 2].astype(np.int64)
-        self._ev_val = arr[:, 3].copy()
-        self._ev_status = np.full(len(arr), STATUS_PENDING, dtype=np.int64)
-        self._ev_nis = np.zeros(len(arr))
-        self._ev_innov = np.zeros(len(arr))
+    def _set_log(self, events: FloatArray) -> None:
+        self._ev_t = events[:, 0].copy()
+        self._ev_kind = events[:, 1].astype(np.int64)
+        self._ev_idx = events[:, 2].astype(np.int64)
+        self._ev_val = events[:, 3].copy()
+        self._ev_status = np.full(len(events), STATUS_PENDING, dtype=np.int64)
+        self._ev_nis = np.zeros(len(events))
+        self._ev_innov = np.zeros(len(events))
 
-    def _merge(self, events: list[tuple[float, int, int, float]]) -> int:
+    def _merge(self, events: FloatArray) -> int:
         """Insert events into the log in canonical order; return the first changed position."""
-        new = np.array(sorted(events), dtype=np.float64).reshape(-1, 4)
+        new = _sorted_unique(events)
         n_old = len(self._ev_t)
         if n_old == 0 or tuple(new[0]) > (
             self._ev_t[-1],
@@ -733,9 +885,6 @@ class CascadeFilter:
             self._ev_val[-1],
         ):
             # In-order arrival, the common case: append without re-sorting.
-            dup = np.zeros(len(new), dtype=bool)
-            dup[1:] = np.all(new[1:] == new[:-1], axis=1)
-            new = new[~dup]
             self._ev_t = np.concatenate([self._ev_t, new[:, 0]])
             self._ev_kind = np.concatenate([self._ev_kind, new[:, 1].astype(np.int64)])
             self._ev_idx = np.concatenate([self._ev_idx, new[:, 2].astype(np.int64)])
@@ -752,51 +901,46 @@ class CascadeFilter:
         val = np.concatenate([self._ev_val, new[:, 3]])
         order = np.lexsort((val, idx, kind, t))
         t, kind, idx, val = t[order], kind[order], idx[order], val[order]
-        # Exact repeats (same tag, time and value) are one reading.
+        # Exact repeats (same tag, time and value) are one reading; the stable sort
+        # puts the one already in the log first, so it is the one kept.
         keep = np.ones(len(t), dtype=bool)
-        keep[1:] = ~(
-            (t[1:] == t[:-1])
-            & (kind[1:] == kind[:-1])
-            & (idx[1:] == idx[:-1])
-            & (val[1:] == val[:-1])
-        )
-        old_count = len(self._ev_t)
-        is_new = order >= old_count
+        same = (t[1:] == t[:-1]) & (kind[1:] == kind[:-1])
+        keep[1:] = ~(same & (idx[1:] == idx[:-1]) & (val[1:] == val[:-1]))
+        is_new = order >= n_old
         first_new = int(np.argmax(is_new & keep)) if np.any(is_new & keep) else len(t)
         status = np.concatenate(
             [self._ev_status, np.full(len(new), STATUS_PENDING, dtype=np.int64)]
         )[order]
         nis = np.concatenate([self._ev_nis, np.zeros(len(new))])[order]
         innov = np.concatenate([self._ev_innov, np.zeros(len(new))])[order]
-        self._ev_t, self._ev_kind, self._ev_idx, self._ev_val = (
-            t[keep],
-            kind[keep],
-            idx[keep],
-            val[keep],
-        )
-        self._ev_status, self._ev_nis, self._ev_innov = status[keep], nis[keep], innov[keep]
+        self._ev_t, self._ev_kind, self._ev_idx = t[keep], kind[keep], idx[keep]
+        self._ev_val, self._ev_status = val[keep], status[keep]
+        self._ev_nis, self._ev_innov = nis[keep], innov[keep]
         # Positions before first_new are unchanged (every new event sorts at or after it).
         return int(np.count_nonzero(keep[:first_new]))
 
     def _run_from(self, position: int) -> FilterRun:
         """Restore the last snapshot at or before ``position`` and run the log to its end."""
-        s = int(np.searchsorted(self._snap_pos, position, side="right")) - 1
-        s = max(s, 0)
-        rewound = None
+        s = max(int(np.searchsorted(self._snap_pos, position, side="right")) - 1, 0)
         start = int(self._snap_pos[s])
+        rewound = None
         if start < len(self._ev_t) and self._snap_t[s] < self.t:
             rewound = float(self._snap_t[s])
         x = self._snap_x[s].copy()
         cov = self._snap_cov[s].copy()
         u = self._snap_u[s].copy()
+        streak = self._snap_streak[s].copy()
         t = float(self._snap_t[s])
         keep = s + 1
         stop = len(self._ev_t)
         count = stop - start
         n = self.model.n_states
+        n_v = self.model.layout.n_vessels
         out_t = np.empty(count)
         out_x = np.empty((count, n))
         out_var = np.empty((count, n))
+        out_conv = np.empty((count, 2 * n_v))
+        out_u = np.empty((count, self.model.n_inputs))
         span = (self._ev_t[stop - 1] - t) if count else 0.0
         cap = int(span / self.snapshot_interval) + 2 if count else 0
         snap_pos = np.empty(cap, dtype=np.int64)
@@ -804,26 +948,31 @@ class CascadeFilter:
         snap_x = np.empty((cap, n))
         snap_cov = np.empty((cap, n, n))
         snap_u = np.empty((cap, self.model.n_inputs))
+        snap_streak = np.empty((cap, len(self.measurements)), dtype=np.int64)
         t, n_out, n_snap, _ = run_events(
             x, cov, u, t,
             self._ev_t, self._ev_kind, self._ev_idx, self._ev_val, start, stop,
             self.model.ip, self.model.fp, self.model.process_noise,
             self._m_state, self._m_bias, self._m_var, self._m_group, self._gates, self._lower,
-            self.snapshot_interval, float(self._snap_t[s]),
+            self._persist, streak, self.snapshot_interval, float(self._snap_t[s]),
             self._ev_status, self._ev_nis, self._ev_innov,
-            out_t, out_x, out_var,
-            snap_pos, snap_t, snap_x, snap_cov, snap_u,
+            out_t, out_x, out_var, out_conv, out_u,
+            snap_pos, snap_t, snap_x, snap_cov, snap_u, snap_streak,
         )  # fmt: skip
         self._snap_pos = np.concatenate([self._snap_pos[:keep], snap_pos[:n_snap]])
         self._snap_t = np.concatenate([self._snap_t[:keep], snap_t[:n_snap]])
         self._snap_x = np.concatenate([self._snap_x[:keep], snap_x[:n_snap]])
         self._snap_cov = np.concatenate([self._snap_cov[:keep], snap_cov[:n_snap]])
         self._snap_u = np.concatenate([self._snap_u[:keep], snap_u[:n_snap]])
+        self._snap_streak = np.concatenate([self._snap_streak[:keep], snap_streak[:n_snap]])
         self.x, self.cov, self.u, self.t = x, cov, u, max(t, self.t)
         return FilterRun(
             out_t[:n_out],
             out_x[:n_out],
             np.sqrt(np.maximum(out_var[:n_out], 0.0)),
+            out_conv[:n_out, :n_v],
+            np.sqrt(out_conv[:n_out, n_v:]),
+            out_u[:n_out],
             [],
             rewound,
             self.events(start, stop),
@@ -841,6 +990,7 @@ class CascadeFilter:
         self._snap_x = self._snap_x[s:]
         self._snap_cov = self._snap_cov[s:]
         self._snap_u = self._snap_u[s:]
+        self._snap_streak = self._snap_streak[s:]
         for name in (
             "_ev_t",
             "_ev_kind",
@@ -874,6 +1024,17 @@ class CascadeFilter:
     def std(self) -> FloatArray:
         """1-sigma of every state now, sqrt(diag P) [state units]."""
         return np.sqrt(np.maximum(np.diag(self.cov), 0.0))
+
+
+def _sorted_unique(events: FloatArray) -> FloatArray:
+    """Rows (time, kind, index, value) in canonical order, exact repeats dropped."""
+    if len(events) == 0:
+        return events.reshape(0, 4)
+    order = np.lexsort((events[:, 3], events[:, 2], events[:, 1], events[:, 0]))
+    ordered = events[order]
+    keep = np.ones(len(ordered), dtype=bool)
+    keep[1:] = np.any(ordered[1:] != ordered[:-1], axis=1)
+    return ordered[keep]
 
 
 __all__ = [

@@ -1,0 +1,337 @@
+"""One train's estimator session: readings in, estimates out. Pure: no I/O.
+
+The session is the one object both drivers use (DESIGN.md, "Data flow"): the replay
+hands it an archive's columns chunk by chunk, the service hands it each request's
+batch. It converts readings from the units their tags declare to SI, feeds the
+filter (which orders them, applies dead times and rewinds for late ones), and turns
+what the filter produced into engineer-facing estimates: every vessel's
+concentrations with 1-sigma, conversion beside the design expectation, the activity,
+NIS, and gated readings with the reason in words.
+
+Estimates after a rewind revise earlier ones: :class:`RevisionBuffer` keeps the
+recent rows and releases a row once no late reading within the history horizon can
+change it any more.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Protocol
+
+import numpy as np
+from numpy.typing import ArrayLike
+
+from estimator.config import TrainConfig
+from estimator.conversion import design_conversion, feed_inputs
+from estimator.filter import (
+    KIND_MEASUREMENT,
+    STATUS_ACCEPTED,
+    STATUS_GATED,
+    STATUS_STEP,
+    CascadeFilter,
+    FilterRun,
+    Refusal,
+)
+from estimator.model import FloatArray, TrainModel
+
+
+@dataclass
+class EstimateBatch:
+    """Estimates at successive times, as columns, oldest first.
+
+    Attributes
+    ----------
+    time : ndarray, shape (k,)
+        Estimate time [s since the epoch].
+    concentration, concentration_std : ndarray, shape (k, N, S)
+        Each species in each vessel and its 1-sigma [mol/m^3].
+    conversion, conversion_std : ndarray, shape (k, N)
+        Reactant conversion after each vessel, ``1 - C_A,i / C_A,feed``, and its
+        1-sigma [-].
+    design_conversion : ndarray, shape (k, N)
+        What the design model expects at the same inputs and design activity [-].
+    activity, activity_std : ndarray, shape (k,)
+        Catalyst activity and its 1-sigma [-] (the design value and 0 when the
+        activity is not estimated).
+    feed : ndarray, shape (k, S)
+        Feed concentration the model used [mol/m^3].
+    inputs : ndarray, shape (k, 1 + N + S)
+        Flow, temperatures and feed in SI [m^3/s, K, mol/m^3].
+    """
+
+    time: FloatArray
+    concentration: FloatArray
+    concentration_std: FloatArray
+    conversion: FloatArray
+    conversion_std: FloatArray
+    design_conversion: FloatArray
+    activity: FloatArray
+    activity_std: FloatArray
+    feed: FloatArray
+    inputs: FloatArray
+
+    def __len__(self) -> int:
+        return int(self.time.shape[0])
+
+    def take(self, rows: slice | np.ndarray) -> EstimateBatch:
+        """Return the rows selected by a slice, index array or boolean mask."""
+        return EstimateBatch(**{name: getattr(self, name)[rows] for name in _FIELDS})
+
+    @classmethod
+    def concat(cls, batches: Sequence[EstimateBatch]) -> EstimateBatch:
+        """Join batches in order (all of one train)."""
+        return cls(
+            **{name: np.concatenate([getattr(b, name) for b in batches]) for name in _FIELDS}
+        )
+
+
+_FIELDS = tuple(EstimateBatch.__dataclass_fields__)
+
+
+@dataclass(frozen=True)
+class GatedReading:
+    """A reading the filter rejected at its innovation gate, kept with the reason.
+
+    ``value`` and ``predicted`` are in the tag's own unit; ``time`` is when the
+    reading was stamped and ``sample_time`` when its sample was taken.
+    """
+
+    tag: str
+    time: float
+    sample_time: float
+    value: float
+    predicted: float
+    unit: str
+    nis: float
+    reason: str
+
+
+@dataclass
+class SessionOutput:
+    """What one :meth:`TrainSession.ingest` call produced.
+
+    ``estimates`` are new rows and, after a rewind, revisions of rows from
+    ``estimates.time[0]`` on. ``gated`` are gated readings in the (re)run span (a
+    reading re-run after a rewind appears again with its current decision);
+    ``refused`` readings were not taken. ``nis`` holds (time, NIS, degrees of
+    freedom) of each accepted update in the span. ``steps`` are readings taken as a
+    real step after persistent gating (their prior was widened to accept them).
+    """
+
+    estimates: EstimateBatch
+    gated: list[GatedReading] = field(default_factory=list)
+    steps: list[GatedReading] = field(default_factory=list)
+    refused: list[Refusal] = field(default_factory=list)
+    nis: FloatArray = field(default_factory=lambda: np.empty((0, 3)))
+    revised_from: float | None = None
+
+
+class TrainSession:
+    """Readings in any order -> estimates, for one train (no I/O).
+
+    Parameters
+    ----------
+    config : TrainConfig
+        The train description.
+    snapshot_interval : float
+        Spacing of the filter's rewind snapshots [s].
+    """
+
+    def __init__(self, config: TrainConfig, *, snapshot_interval: float = 60.0) -> None:
+        self.config = config
+        self.model = TrainModel.from_config(config)
+        self.filter = CascadeFilter(self.model, snapshot_interval=snapshot_interval)
+        names = self.filter.tag_names
+        scale = np.ones(len(names))
+        offset = np.zeros(len(names))
+        units = ["SI"] * len(names)
+        for tag, source in _tag_sources(config):
+            code = self.filter.tag_code[tag]
+            scale[code], offset[code], units[code] = source.scale, source.offset, source.unit
+        self._scale = scale
+        self._offset = offset
+        self.units: tuple[str, ...] = tuple(units)
+
+    @property
+    def tags(self) -> tuple[str, ...]:
+        """Every tag the train reads, in code order."""
+        return self.filter.tag_names
+
+    def codes(self, tags: Sequence[str]) -> np.ndarray:
+        """Code of each tag (-1 for a tag this train does not have)."""
+        return np.array([self.filter.tag_code.get(t, -1) for t in tags], dtype=np.int64)
+
+    def ingest(
+        self,
+        tags: Sequence[str],
+        times: ArrayLike,
+        values: ArrayLike,
+        *,
+        si: bool = False,
+    ) -> SessionOutput:
+        """Take readings (tag, time [s since the epoch], value) in any order.
+
+        Values are in each tag's declared unit, or SI when ``si`` is true.
+        """
+        return self.ingest_codes(self.codes(tags), times, values, si=si, names=tags)
+
+    def ingest_codes(
+        self,
+        codes: ArrayLike,
+        times: ArrayLike,
+        values: ArrayLike,
+        *,
+        si: bool = False,
+        names: Sequence[str] | None = None,
+    ) -> SessionOutput:
+        """:meth:`ingest` with tags as codes (indices into :attr:`tags`), vectorised."""
+        code = np.asarray(codes, dtype=np.int64)
+        v = np.asarray(values, dtype=np.float64)
+        if not si:
+            safe = np.clip(code, 0, len(self._scale) - 1)
+            v = np.where(code >= 0, self._scale[safe] * v + self._offset[safe], v)
+        run = self.filter.add_columns(code, times, v, names=names)
+        return self._output(run)
+
+    def _output(self, run: FilterRun) -> SessionOutput:
+        model = self.model
+        lay = model.layout
+        k = len(run.times)
+        n_v, n_s = lay.n_vessels, lay.n_species
+        conc = run.states[:, : lay.n_concentrations].reshape(k, n_v, n_s)
+        conc_std = run.std[:, : lay.n_concentrations].reshape(k, n_v, n_s)
+        if lay.activity >= 0:
+            activity = run.states[:, lay.activity]
+            activity_std = run.std[:, lay.activity]
+        else:
+            activity = np.full(k, model.config.estimator.design_activity)
+            activity_std = np.zeros(k)
+        inputs = feed_inputs(model, run.inputs, run.states)
+        estimates = EstimateBatch(
+            time=run.times,
+            concentration=conc,
+            concentration_std=conc_std,
+            conversion=run.conversion,
+            conversion_std=run.conversion_std,
+            design_conversion=design_conversion(model, inputs),
+            activity=activity,
+            activity_std=activity_std,
+            feed=inputs[:, 1 + n_v :],
+            inputs=inputs,
+        )
+        gated, steps, nis = self._events(run)
+        return SessionOutput(estimates, gated, steps, run.refused, nis, run.rewound_to)
+
+    def _events(
+        self, run: FilterRun
+    ) -> tuple[list[GatedReading], list[GatedReading], FloatArray]:
+        ev = run.events
+        if ev is None or len(ev["time"]) == 0:
+            return [], [], np.empty((0, 3))
+        filt = self.filter
+        meas = ev["kind"] == KIND_MEASUREMENT
+        gated: list[GatedReading] = []
+        steps: list[GatedReading] = []
+        gate_sigma = math.sqrt(float(filt._gates[0]))
+        persist = self.config.estimator.step_persistence
+        flagged = meas & ((ev["status"] == STATUS_GATED) | (ev["status"] == STATUS_STEP))
+        for i in np.flatnonzero(flagged).tolist():
+            j = int(ev["index"][i])
+            tag = filt.measurements[j].tag
+            code = filt.tag_code[tag]
+            scale, offset = self._scale[code], self._offset[code]
+            value = (float(ev["value"][i]) - offset) / scale
+            innovation = float(ev["innovation"][i]) / scale
+            nis = float(ev["nis"][i])
+            unit = self.units[code]
+            is_step = ev["status"][i] == STATUS_STEP
+            if is_step:
+                reason = (
+                    f"taken as a real step of {innovation:+.4g} {unit} after {persist} "
+                    "gated readings on the same side; the estimate's uncertainty was widened"
+                )
+            else:
+                reason = (
+                    f"{innovation:+.4g} {unit} from the prediction, {math.sqrt(nis):.1f} "
+                    f"sigma (gate {gate_sigma:.1f} sigma at "
+                    f"p = {self.config.estimator.gate_probability:g})"
+                )
+            sample = float(ev["time"][i])
+            (steps if is_step else gated).append(
+                GatedReading(
+                    tag,
+                    sample + filt.measurements[j].dead_time,
+                    sample,
+                    value,
+                    value - innovation,
+                    unit,
+                    nis,
+                    reason,
+                )
+            )
+        # One NIS per update: readings of a group at one time share theirs.
+        ok = np.flatnonzero(meas & (ev["status"] == STATUS_ACCEPTED))
+        if ok.size == 0:
+            return gated, steps, np.empty((0, 3))
+        group = filt._m_group[ev["index"][ok]]
+        key = np.column_stack([ev["time"][ok], group])
+        _, first, counts = np.unique(key, axis=0, return_index=True, return_counts=True)
+        rows = ok[first]
+        nis_rows = np.column_stack([ev["time"][rows], ev["nis"][rows], counts.astype(float)])
+        return gated, steps, nis_rows[np.argsort(nis_rows[:, 0], kind="stable")]
+
+
+class RevisionBuffer:
+    """Holds recent estimates until no late reading can revise them.
+
+    Add each :class:`SessionOutput`'s estimates; rows from the first new time on
+    replace what was held. :meth:`release` hands back, in order, the rows older than
+    a cut-off (the newest time minus the history horizon, or everything at the end).
+    """
+
+    def __init__(self) -> None:
+        self._held: list[EstimateBatch] = []
+
+    def add(self, estimates: EstimateBatch) -> None:
+        """Take new and revised rows."""
+        if len(estimates) == 0:
+            return
+        start = float(estimates.time[0])
+        kept = [b.take(b.time < start) for b in self._held]
+        self._held = [b for b in kept if len(b)] + [estimates]
+
+    def release(self, before: float = math.inf) -> EstimateBatch | None:
+        """Rows with time < ``before``, removed from the buffer (None if there are none)."""
+        if not self._held:
+            return None
+        held = EstimateBatch.concat(self._held) if len(self._held) > 1 else self._held[0]
+        out = held.take(held.time < before)
+        rest = held.take(held.time >= before)
+        self._held = [rest] if len(rest) else []
+        return out if len(out) else None
+
+
+def _tag_sources(config: TrainConfig) -> list[tuple[str, _Unit]]:
+    """Each tag with the object carrying its unit, scale and offset."""
+    out: list[tuple[str, _Unit]] = [(config.feed.flow.tag, config.feed.flow)]
+    for vessel in config.vessels:
+        if not isinstance(vessel.temperature, float):
+            out.append((vessel.temperature.tag, vessel.temperature))
+    for source in config.feed.composition.values():
+        if not isinstance(source, float):
+            out.append((source.tag, source))
+    out += [(m.tag, m) for m in config.measurements]
+    return out
+
+
+class _Unit(Protocol):
+    """What :func:`_tag_sources` reads from a tag's config."""
+
+    @property
+    def unit(self) -> str: ...
+    @property
+    def scale(self) -> float: ...
+    @property
+    def offset(self) -> float: ...

@@ -1,0 +1,82 @@
+"""Design conversion expectation against textbook closed forms."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from estimator.conversion import design_conversion
+from estimator.model import equilibrium_constant
+from tests.estimator.trains import train_model
+
+
+def test_equal_vessels_match_levenspiel_closed_form():
+    # X_N = 1 - (1 + k tau)^-N for N equal first-order CSTRs (Levenspiel, CRE 3rd ed.,
+    # ch. 6); REFERENCES.md sec. 1.3, computed from the closed form: Da = 1 gives
+    # 0.5, 0.75, 0.875 after vessels 1 to 3.
+    model = train_model(volumes=("1 m^3",) * 3, k_ref="1 1/s", flow="1 m^3/s")
+    x = design_conversion(model, model.nominal_inputs()[None, :])
+    np.testing.assert_allclose(x[0], [0.5, 0.75, 0.875], rtol=1e-12)
+
+
+def test_unequal_vessels_match_product_form():
+    # Unequal tanks, k = 0.5, tau = (1, 2, 3): X = 1 - prod 1/(1 + k tau_j) = 0.8667
+    # (REFERENCES.md sec. 1.3, computed from the closed form).
+    model = train_model(volumes=("1 m^3", "2 m^3", "3 m^3"), k_ref="0.5 1/s", flow="1 m^3/s")
+    x = design_conversion(model, model.nominal_inputs()[None, :])
+    expected = 1 - np.cumprod([1 / 1.5, 1 / 2.0, 1 / 2.5])
+    np.testing.assert_allclose(x[0], expected, rtol=1e-12)
+    assert x[0, -1] == pytest.approx(0.8667, abs=5e-5)
+
+
+def test_reversible_two_vessels():
+    # A <=> B, k_f = 1, K = 4, tau = 2, C_A0 = 1: C_A = 0.42857 then 0.26531
+    # (REFERENCES.md sec. 1.4, derived from the mole balance, computed).
+    model = train_model(
+        volumes=("2 m^3", "2 m^3"),
+        kind="reversible",
+        k_ref="1 1/s",
+        equilibrium_constant_ref=4.0,
+        flow="1 m^3/s",
+        feed={"A": "1 mol/m^3"},
+    )
+    x = design_conversion(model, model.nominal_inputs()[None, :])
+    np.testing.assert_allclose(x[0], [1 - 0.42857, 1 - 0.26531], atol=5e-6)
+
+
+def test_rows_are_independent_and_match_the_model_steady_state():
+    model = train_model(
+        volumes=("2 m^3", "5 m^3", "1 m^3"),
+        kind="reversible",
+        k_ref="0.2 1/s",
+        equilibrium_constant_ref=2.5,
+        reaction_enthalpy="-8 kJ/mol",
+        activation_energy="50 kJ/mol",
+        temperatures=("340 K", "350 K", "360 K"),
+        fixed_feed={"B": "100 mol/m^3"},
+    )
+    rng = np.random.default_rng(2)
+    rows = np.tile(model.nominal_inputs(), (20, 1))
+    rows[:, 0] *= rng.uniform(0.0, 3.0, 20)
+    rows[:, 1:4] += rng.uniform(-15, 15, (20, 3))
+    rows[3, 0] = 0.0  # no flow: each vessel at equilibrium
+    x = design_conversion(model, rows, activity=0.8)
+    for k, u in enumerate(rows):
+        if k == 3:
+            continue
+        state = model.steady_state(u, activity=0.8)
+        c_a = state[[0, 2, 4]]
+        np.testing.assert_allclose(x[k], 1 - c_a / u[4], rtol=1e-10)
+    # With no flow each vessel holds its equilibrium, C_B / C_A = K_eq(T_i), on the
+    # conserved total of the feed (A + B).
+    total = rows[3, 4] + rows[3, 5]
+    k_eq = np.array([equilibrium_constant(2.5, 350.0, -8000.0, t) for t in rows[3, 1:4]])
+    np.testing.assert_allclose(x[3], 1 - total / (1 + k_eq) / rows[3, 4], rtol=1e-12)
+
+
+def test_no_reactant_in_feed_gives_zero_not_nan():
+    model = train_model(volumes=("1 m^3",))
+    u = model.nominal_inputs()[None, :].copy()
+    u[0, 2] = 0.0
+    x = design_conversion(model, u)
+    assert x.tolist() == [[0.0]]
