@@ -155,6 +155,159 @@ def demo(
     run_demo(seed=seed, hours=hours)
 
 
+_FORMS = ("long", "wide")
+_FORMATS = ("parquet", "csv", "csv.gz")
+
+
+def _problem_lines(exc: Exception) -> str:
+    """One line per problem of a configuration error: ``error: FILE: key: reason``."""
+    from estimator.errors import ConfigError
+
+    if isinstance(exc, ConfigError):
+        return "\n".join(f"error: {exc.source}: {p.key}: {p.reason}" for p in exc.problems)
+    return f"error: {exc}"
+
+
+def _size(path: Path) -> str:
+    """File size in kB or MB, for people."""
+    size = path.stat().st_size
+    return f"{size / 1e6:.2f} MB" if size >= 1e6 else f"{size / 1e3:.0f} kB"
+
+
+@app.command(
+    name="simulate",
+    help=(
+        "Simulate a train under a scenario file and write what its historian would hold "
+        "(DIR/archive.<ext>) and the truth (DIR/truth.<ext>)."
+    ),
+)
+def simulate_command(
+    config: Annotated[
+        Path, typer.Option("--config", metavar="TRAIN.toml", help="Train configuration file.")
+    ],
+    scenario: Annotated[
+        Path, typer.Option("--scenario", metavar="SCENARIO.toml", help="Scenario file.")
+    ],
+    out: Annotated[Path, typer.Option("--out", metavar="DIR", help="Folder to write into.")],
+    days: Annotated[
+        float | None,
+        typer.Option(help="Length of the run in days (default: the scenario's duration)."),
+    ] = None,
+    seed: Annotated[
+        int | None, typer.Option(help="Random seed (default: the scenario's seed).")
+    ] = None,
+    form: Annotated[
+        str, typer.Option(help="Archive layout: long (time, tag, value, received) or wide.")
+    ] = "long",
+    file_format: Annotated[
+        str, typer.Option("--format", help="File format: parquet, csv or csv.gz.")
+    ] = "parquet",
+    truth_every: Annotated[
+        float, typer.Option(help="Interval of the rows of the truth file, in seconds.")
+    ] = 60.0,
+) -> None:
+    """Simulate a train under a scenario; write its archive and its truth.
+
+    Parameters
+    ----------
+    config : pathlib.Path
+        The train's TOML file.
+    scenario : pathlib.Path
+        The scenario's TOML file (see :mod:`estimator.scenario`).
+    out : pathlib.Path
+        Folder for ``archive.<ext>`` and ``truth.<ext>``; created if missing.
+    days : float, optional
+        Run length [d], overriding the scenario's.
+    seed : int, optional
+        Seed of the noise generator, overriding the scenario's.
+    form : str
+        ``"long"`` or ``"wide"`` archive.
+    file_format : str
+        ``"parquet"`` (zstd), ``"csv"`` or ``"csv.gz"``.
+    truth_every : float
+        Down-sampling interval of the truth file [s].
+
+    Raises
+    ------
+    typer.Exit
+        Status 2 for bad input (a missing file, an invalid train or scenario, a
+        bad option), each problem on one line; status 1 when writing fails.
+    """
+    import dataclasses
+    import math
+    import time
+
+    if form not in _FORMS:
+        raise _fail(f"error: --form must be one of {', '.join(_FORMS)}, got {form!r}")
+    if file_format not in _FORMATS:
+        raise _fail(f"error: --format must be one of {', '.join(_FORMATS)}, got {file_format!r}")
+    if days is not None and not (math.isfinite(days) and days > 0):
+        raise _fail(f"error: --days must be a positive number of days, got {days}")
+    if not (math.isfinite(truth_every) and truth_every > 0):
+        raise _fail(f"error: --truth-every must be a positive number of seconds, got {truth_every}")
+    for path in (config, scenario):
+        if not path.is_file():
+            what = "is not a file" if path.exists() else "does not exist"
+            raise _fail(f"error: {path} {what}")
+
+    from estimator.config import load_train_config
+    from estimator.errors import ConfigError
+    from estimator.model import TrainModel
+    from estimator.scenario import load_scenario
+    from estimator.simulate import simulate
+    from service.archive import (
+        ArchiveError,
+        simulation_columns,
+        write_archive,
+        write_truth,
+    )
+
+    try:
+        train = load_train_config(config)
+        plan = load_scenario(scenario, train)
+    except ConfigError as exc:
+        raise _fail(_problem_lines(exc)) from None
+    if days is not None:
+        plan = dataclasses.replace(plan, duration=days * 86400.0)
+    model = TrainModel.from_config(train)
+    began = time.perf_counter()
+    try:
+        run = simulate(model, plan, seed=seed)
+    except ValueError as exc:
+        raise _fail(f"error: {scenario}: {exc}") from None
+    elapsed = time.perf_counter() - began
+
+    readings = simulation_columns(run, train)
+    if form == "wide":
+        late = int((run.received > run.reading_times).sum())
+        if late:
+            typer.echo(
+                f"note: wide form has no 'received' column; {_plural(late, 'delayed reading')} "
+                "keep only their sample time"
+            )
+        readings = dataclasses.replace(readings, received=None)
+    archive_path = out / f"archive.{file_format}"
+    truth_path = out / f"truth.{file_format}"
+    try:
+        write_archive(archive_path, readings, form="wide" if form == "wide" else "long")
+        rows = write_truth(truth_path, run, model, every=truth_every)
+    except ArchiveError as exc:
+        raise _fail(f"error: {exc}", code=1) from None
+    except OSError as exc:
+        raise _fail(f"error: cannot write into {out}: {exc.strerror or exc}", code=1) from None
+
+    steps = len(run.times) - 1
+    typer.echo(
+        f"simulated {train.name}: {steps * plan.step / 86400:g} d at {plan.step:g} s "
+        f"({steps:,} steps, seed {plan.seed if seed is None else seed}) in {elapsed:.1f} s"
+    )
+    typer.echo(
+        f"wrote {archive_path}: {len(readings):,} readings of "
+        f"{_plural(len(readings.names), 'tag')}, {form} form ({_size(archive_path)})"
+    )
+    typer.echo(f"wrote {truth_path}: {rows:,} rows every {truth_every:g} s ({_size(truth_path)})")
+
+
 def main() -> None:
     """Run the command line (the ``stagewatch`` console script)."""
     app()
