@@ -115,8 +115,10 @@ class SessionOutput:
     ``estimates`` are new rows and, after a rewind, revisions of rows from
     ``estimates.time[0]`` on. ``gated`` are gated readings in the (re)run span (a
     reading re-run after a rewind appears again with its current decision);
-    ``refused`` readings were not taken. ``nis`` holds (time, NIS, degrees of
-    freedom) of each accepted update in the span. ``steps`` are readings taken as a
+    ``refused`` readings were not taken. ``nis`` holds (sample time, NIS, degrees
+    of freedom, measurement group) of each accepted update in the span; a group is
+    an index into the filter's ``measurements`` (the group's first reading), so
+    (time, group) identifies an update when a rewind runs it again. ``steps`` are readings taken as a
     real step after persistent gating (their prior was widened to accept them).
     """
 
@@ -124,7 +126,7 @@ class SessionOutput:
     gated: list[GatedReading] = field(default_factory=list)
     steps: list[GatedReading] = field(default_factory=list)
     refused: list[Refusal] = field(default_factory=list)
-    nis: FloatArray = field(default_factory=lambda: np.empty((0, 3)))
+    nis: FloatArray = field(default_factory=lambda: np.empty((0, 4)))
     revised_from: float | None = None
 
 
@@ -229,7 +231,7 @@ class TrainSession:
     ) -> tuple[list[GatedReading], list[GatedReading], FloatArray]:
         ev = run.events
         if ev is None or len(ev["time"]) == 0:
-            return [], [], np.empty((0, 3))
+            return [], [], np.empty((0, 4))
         filt = self.filter
         meas = ev["kind"] == KIND_MEASUREMENT
         gated: list[GatedReading] = []
@@ -274,12 +276,14 @@ class TrainSession:
         # One NIS per update: readings of a group at one time share theirs.
         ok = np.flatnonzero(meas & (ev["status"] == STATUS_ACCEPTED))
         if ok.size == 0:
-            return gated, steps, np.empty((0, 3))
+            return gated, steps, np.empty((0, 4))
         group = filt._m_group[ev["index"][ok]]
         key = np.column_stack([ev["time"][ok], group])
         _, first, counts = np.unique(key, axis=0, return_index=True, return_counts=True)
         rows = ok[first]
-        nis_rows = np.column_stack([ev["time"][rows], ev["nis"][rows], counts.astype(float)])
+        nis_rows = np.column_stack(
+            [ev["time"][rows], ev["nis"][rows], counts.astype(float), group[first].astype(float)]
+        )
         return gated, steps, nis_rows[np.argsort(nis_rows[:, 0], kind="stable")]
 
 
