@@ -15,6 +15,7 @@ change it any more.
 
 from __future__ import annotations
 
+import io
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -88,6 +89,7 @@ class EstimateBatch:
 
 
 _FIELDS = tuple(EstimateBatch.__dataclass_fields__)
+_CHECKPOINT_FORMAT = 1
 
 
 @dataclass(frozen=True)
@@ -118,8 +120,9 @@ class SessionOutput:
     ``refused`` readings were not taken. ``nis`` holds (sample time, NIS, degrees
     of freedom, measurement group) of each accepted update in the span; a group is
     an index into the filter's ``measurements`` (the group's first reading), so
-    (time, group) identifies an update when a rewind runs it again. ``steps`` are readings taken as a
-    real step after persistent gating (their prior was widened to accept them).
+    (time, group) identifies an update when a rewind runs it again. ``steps`` are
+    readings taken as a real step after persistent gating (their prior was widened
+    to accept them).
     """
 
     estimates: EstimateBatch
@@ -155,6 +158,39 @@ class TrainSession:
         self._scale = scale
         self._offset = offset
         self.units: tuple[str, ...] = tuple(units)
+
+    def checkpoint(self) -> bytes:
+        """Return the session's state as bytes, to store and later :meth:`restore`.
+
+        Holds the filter's event log and snapshots within the history horizon, so
+        a restored session applies late readings exactly as this one would.
+        """
+        buffer = io.BytesIO()
+        arrays = self.filter.state_arrays()
+        arrays["format"] = np.array(_CHECKPOINT_FORMAT)
+        np.savez_compressed(buffer, **arrays)  # type: ignore[arg-type]  # stub types kwds as bool
+        return buffer.getvalue()
+
+    @classmethod
+    def restore(cls, config: TrainConfig, data: bytes) -> TrainSession:
+        """Build a session of ``config`` resumed from :meth:`checkpoint` bytes.
+
+        Raises
+        ------
+        ValueError
+            When the bytes are not a checkpoint of this version or of this train's
+            state layout.
+        """
+        session = cls(config, snapshot_interval=60.0)
+        try:
+            with np.load(io.BytesIO(data), allow_pickle=False) as saved:
+                arrays = {name: saved[name] for name in saved.files}
+        except (OSError, ValueError) as exc:
+            raise ValueError(f"not a session checkpoint: {exc}") from None
+        if int(arrays.pop("format", -1)) != _CHECKPOINT_FORMAT:
+            raise ValueError("session checkpoint of another format version")
+        session.filter.load_state(arrays)
+        return session
 
     @property
     def tags(self) -> tuple[str, ...]:
@@ -226,9 +262,7 @@ class TrainSession:
         gated, steps, nis = self._events(run)
         return SessionOutput(estimates, gated, steps, run.refused, nis, run.rewound_to)
 
-    def _events(
-        self, run: FilterRun
-    ) -> tuple[list[GatedReading], list[GatedReading], FloatArray]:
+    def _events(self, run: FilterRun) -> tuple[list[GatedReading], list[GatedReading], FloatArray]:
         ev = run.events
         if ev is None or len(ev["time"]) == 0:
             return [], [], np.empty((0, 4))

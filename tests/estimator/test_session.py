@@ -135,3 +135,29 @@ def test_revision_buffer_replaces_revised_rows_and_releases_in_order():
     rest = buf.release()
     assert rest is not None and rest.time.tolist() == [30, 40]
     assert buf.release() is None
+
+
+def test_checkpoint_and_restore_continue_exactly():
+    # A session stopped mid-stream and resumed from its checkpoint gives the same
+    # estimates as one that never stopped, late lab results included.
+    sim = feed_step_readings(hours=8.0)
+    tags, times, values = sim.columns()
+    half = times < 4 * HOUR
+    whole = demo_session()
+    whole.ingest(tags, times, values, si=True)
+    first = demo_session()
+    first.ingest(
+        [t for t, h in zip(tags, half, strict=True) if h], times[half], values[half], si=True
+    )
+    resumed = TrainSession.restore(first.config, first.checkpoint())
+    rest = ~half
+    resumed.ingest(
+        [t for t, r in zip(tags, rest, strict=True) if r], times[rest], values[rest], si=True
+    )
+    np.testing.assert_allclose(resumed.filter.x, whole.filter.x, rtol=1e-12)
+    np.testing.assert_allclose(resumed.filter.cov, whole.filter.cov, rtol=1e-10, atol=1e-14)
+
+
+def test_restore_refuses_bytes_that_are_not_a_checkpoint():
+    with pytest.raises(ValueError, match="not a session checkpoint"):
+        TrainSession.restore(demo_session().config, b"hello")
