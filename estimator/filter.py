@@ -752,6 +752,50 @@ class CascadeFilter:
         code = np.asarray(codes, dtype=np.int64)
         t = np.asarray(times, dtype=np.float64)
         v = np.asarray(values, dtype=np.float64)
+        take, refused = self.screen(code, t, v, names)
+        sample = t - self._dead_of[np.where(take, code, 0)]
+        events = np.column_stack(
+            [sample[take], self._kind_of[code[take]], self._index_of[code[take]], v[take]]
+        ).astype(np.float64)
+        if not self.initialized:
+            self._pending = np.vstack([self._pending, events])
+            if not self._try_start():
+                return FilterRun.empty(self.model, refused)
+            run = self._run_from(0)
+        else:
+            if len(events) == 0:
+                return FilterRun.empty(self.model, refused)
+            first = self._merge(events)
+            if first >= len(self._ev_t):
+                return FilterRun.empty(self.model, refused)
+            run = self._run_from(first)
+            self._trim()
+        run.refused = refused
+        return run
+
+    def screen(
+        self,
+        codes: ArrayLike,
+        times: ArrayLike,
+        values: ArrayLike,
+        names: Sequence[str] | None = None,
+    ) -> tuple[np.ndarray, list[Refusal]]:
+        """Which readings the filter would take now, and why it would refuse the rest.
+
+        Reasons: an unknown tag, a value or time that is not a finite number, a
+        value outside the tag's range (or physically impossible: a negative flow,
+        a temperature at or below absolute zero), a sample older than the history
+        horizon. Nothing changes; the service screens, journals what passes, then
+        ingests it.
+
+        Returns
+        -------
+        take : ndarray of bool, shape (k,)
+        refused : list of Refusal
+        """
+        code = np.asarray(codes, dtype=np.int64)
+        t = np.asarray(times, dtype=np.float64)
+        v = np.asarray(values, dtype=np.float64)
         if not code.shape == t.shape == v.shape:
             raise ValueError("codes, times and values must have the same length")
         known = (code >= 0) & (code < len(self.tag_names))
@@ -780,24 +824,7 @@ class CascadeFilter:
                 else:
                     reason = horizon
                 refused.append(Refusal(name, float(t[i]), float(v[i]), reason))
-        events = np.column_stack(
-            [sample[take], self._kind_of[code[take]], self._index_of[code[take]], v[take]]
-        ).astype(np.float64)
-        if not self.initialized:
-            self._pending = np.vstack([self._pending, events])
-            if not self._try_start():
-                return FilterRun.empty(self.model, refused)
-            run = self._run_from(0)
-        else:
-            if len(events) == 0:
-                return FilterRun.empty(self.model, refused)
-            first = self._merge(events)
-            if first >= len(self._ev_t):
-                return FilterRun.empty(self.model, refused)
-            run = self._run_from(first)
-            self._trim()
-        run.refused = refused
-        return run
+        return take, refused
 
     # ------------------------------------------------------------------ internals
 

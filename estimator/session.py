@@ -215,6 +215,30 @@ class TrainSession:
         """
         return self.ingest_codes(self.codes(tags), times, values, si=si, names=tags)
 
+    def to_si(self, codes: ArrayLike, values: ArrayLike) -> FloatArray:
+        """Values from each tag's declared unit to SI (unknown codes pass through)."""
+        code = np.asarray(codes, dtype=np.int64)
+        v = np.asarray(values, dtype=np.float64)
+        safe = np.clip(code, 0, len(self._scale) - 1)
+        return np.where(code >= 0, self._scale[safe] * v + self._offset[safe], v)
+
+    def screen(
+        self,
+        codes: ArrayLike,
+        times: ArrayLike,
+        values: ArrayLike,
+        *,
+        si: bool = False,
+        names: Sequence[str] | None = None,
+    ) -> tuple[np.ndarray, list[Refusal]]:
+        """Which readings :meth:`ingest_codes` would take now, and the others' reasons.
+
+        Changes nothing: the service screens a batch, journals what passes, then
+        ingests it.
+        """
+        v = np.asarray(values, dtype=np.float64) if si else self.to_si(codes, values)
+        return self.filter.screen(codes, times, v, names)
+
     def ingest_codes(
         self,
         codes: ArrayLike,
@@ -226,10 +250,7 @@ class TrainSession:
     ) -> SessionOutput:
         """:meth:`ingest` with tags as codes (indices into :attr:`tags`), vectorised."""
         code = np.asarray(codes, dtype=np.int64)
-        v = np.asarray(values, dtype=np.float64)
-        if not si:
-            safe = np.clip(code, 0, len(self._scale) - 1)
-            v = np.where(code >= 0, self._scale[safe] * v + self._offset[safe], v)
+        v = np.asarray(values, dtype=np.float64) if si else self.to_si(code, values)
         run = self.filter.add_columns(code, times, v, names=names)
         return self._output(run)
 
