@@ -6,9 +6,10 @@
 # so a missing package is never mistaken for a passing suite.
 set -euo pipefail
 
-# Space-separated Debian package names. Empty at this stage; later suites add
-# e.g. chromium (browser tests), postgresql (database suite), wrk (load tests).
-PACKAGES=""
+# Space-separated Debian package names: postgresql for the store's tests (a
+# throwaway server is started by tests/service/conftest.py). Later suites add
+# chromium (browser tests) and wrk (load benchmarks).
+PACKAGES="postgresql"
 
 missing=()
 for pkg in $PACKAGES; do

@@ -1,0 +1,1369 @@
+"""Persistence: trains, the readings journal, estimates, gated readings, checkpoints, keys.
+
+One :class:`Store` over SQLAlchemy 2, on SQLite (the default, a single file) or
+PostgreSQL (``postgresql+psycopg://``). Every public method is one transaction: it
+commits before it returns, or rolls back and raises. Batches go to the database in
+one statement, never a round trip per row.
+
+What is kept:
+
+- ``trains`` and ``train_versions``: a train's name and title, and every config it
+  has had (the validated config as JSON in SI, and the text as posted). A config
+  change adds a version; a version is never rewritten.
+- ``readings``: the journal. Each reading (tag, time, value, quality) gets a journal
+  id, increasing in the order readings were accepted and never reused; (train, tag,
+  time) is unique, so posting a batch again stores nothing twice.
+- ``estimates``: one JSON row per (train, time); a revision replaces the row.
+- ``gated_readings``: readings the filter rejected, or took as a step, with reasons.
+- ``checkpoints``: session state with the last journal id it includes; the newest
+  three per train are kept.
+- ``api_keys``: hashes of API keys with their role (the key itself is never stored).
+
+Times of data (readings, estimates, gated readings) are floats, seconds since the
+Unix epoch; the store keeps bookkeeping times (created, retired, revoked) as epoch
+seconds too and hands them out as timezone-aware UTC datetimes.
+
+A database that cannot take a write or answer a read -- SQLite locked by another
+writer past the busy timeout, a full disk, PostgreSQL unreachable or past its lock
+timeout -- raises :class:`StoreUnavailable` with the reason; the transaction is
+rolled back, and what was committed before stays.
+
+SQLite runs in WAL mode with ``synchronous=NORMAL`` by default: a commit survives a
+crash of the process, and the database is never corrupted, but a power cut or an
+operating-system crash may lose the last commits before the WAL is synced. Pass
+``sqlite_synchronous="FULL"`` for commits that survive those too, at the cost of an
+fsync per transaction.
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+import math
+import time
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from typing import Any, Literal, NamedTuple, ParamSpec, TypedDict, TypeVar
+
+import numpy as np
+from numpy.typing import NDArray
+from sqlalchemy import (
+    BigInteger,
+    CheckConstraint,
+    Double,
+    ForeignKey,
+    Index,
+    Integer,
+    LargeBinary,
+    SmallInteger,
+    String,
+    Text,
+    UniqueConstraint,
+    case,
+    cast,
+    create_engine,
+    delete,
+    event,
+    func,
+    select,
+    text,
+    update,
+)
+from sqlalchemy.dialects import postgresql, sqlite
+from sqlalchemy.engine import URL, Connection, Engine, make_url
+from sqlalchemy.exc import DBAPIError, IntegrityError, InterfaceError, OperationalError
+from sqlalchemy.exc import TimeoutError as PoolTimeoutError
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
+from sqlalchemy.sql.elements import ColumnElement
+
+from estimator.config import TrainConfig
+
+__all__ = [
+    "AppendResult",
+    "ApiKeyRecord",
+    "Checkpoint",
+    "GatedRow",
+    "PruneCounts",
+    "ReadingBatch",
+    "Store",
+    "StoreUnavailable",
+    "TrainExists",
+    "TrainNotFound",
+    "TrainRecord",
+    "TrainVersion",
+]
+
+_P = ParamSpec("_P")
+_R = TypeVar("_R")
+
+#: How many checkpoints per train :meth:`Store.save_checkpoint` keeps.
+CHECKPOINTS_KEPT = 3
+
+# Key space of the PostgreSQL advisory locks that serialise journal appends per
+# train ("SW"); the second key is the train id.
+_JOURNAL_LOCK_SPACE = 0x5357
+# Connection execution option marking a writing transaction (SQLite: BEGIN IMMEDIATE).
+_WRITE = "stagewatch_write"
+_SMALLINT = (-32768, 32767)
+_GATED_FIELDS = (
+    "tag",
+    "time",
+    "sample_time",
+    "value",
+    "predicted",
+    "unit",
+    "nis",
+    "reason",
+    "decision",
+)
+_DECISIONS = ("gated", "step")
+
+# PostgreSQL journal statements: one array per column instead of a placeholder per
+# value, so that a batch is a short statement (psycopg re-parses long ones each time).
+_PG_APPEND = text(
+    "INSERT INTO readings (train_id, tag, time, value, quality, received_at) "
+    "SELECT :train_id, k.tag, k.time, k.value, k.quality, :received_at "
+    "FROM unnest(CAST(:tags AS text[]), CAST(:times AS float8[]), "
+    "CAST(:values AS float8[]), CAST(:qualities AS int2[])) AS k(tag, time, value, quality) "
+    "ON CONFLICT (train_id, tag, time) DO NOTHING "
+    "RETURNING id, tag, time"
+)
+_PG_STORED = text(
+    "SELECT r.tag, r.time, r.value "
+    "FROM unnest(CAST(:tags AS text[]), CAST(:times AS float8[])) AS k(tag, time) "
+    "JOIN readings r ON r.train_id = :train_id AND r.tag = k.tag AND r.time = k.time"
+)
+
+IntArray = NDArray[np.int64]
+FloatArray = NDArray[np.float64]
+
+
+class StoreUnavailable(Exception):
+    """The database cannot take the write or answer the read now; nothing was changed.
+
+    ``reason`` says why (locked, disk full, unreachable) in words for a 503 answer.
+    """
+
+    def __init__(self, reason: str) -> None:
+        super().__init__(reason)
+        self.reason = reason
+
+
+class TrainNotFound(LookupError):
+    """No train of that name (or no active one, where a retired train will not do)."""
+
+
+class TrainExists(ValueError):
+    """A train of that name is already stored (retired trains keep their names)."""
+
+
+# ---------------------------------------------------------------------------- schema
+
+
+class _Base(DeclarativeBase):
+    pass
+
+
+# SQLite makes only an INTEGER PRIMARY KEY an alias of its rowid.
+_BIGID = BigInteger().with_variant(Integer(), "sqlite")
+
+
+class _Train(_Base):
+    __tablename__ = "trains"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(64), unique=True)
+    title: Mapped[str] = mapped_column(Text)
+    created_at: Mapped[float] = mapped_column(Double)
+    retired_at: Mapped[float | None] = mapped_column(Double)
+    current_version: Mapped[int] = mapped_column(Integer)
+
+
+class _TrainVersion(_Base):
+    __tablename__ = "train_versions"
+
+    train_id: Mapped[int] = mapped_column(ForeignKey("trains.id"), primary_key=True)
+    version: Mapped[int] = mapped_column(Integer, primary_key=True)
+    config_json: Mapped[str] = mapped_column(Text)
+    source_text: Mapped[str] = mapped_column(Text)
+    created_at: Mapped[float] = mapped_column(Double)
+
+
+class _Reading(_Base):
+    __tablename__ = "readings"
+    # AUTOINCREMENT: SQLite would otherwise reuse the ids of deleted newest rows, and
+    # a journal id must never come back once a checkpoint has passed it.
+    __table_args__ = (
+        UniqueConstraint("train_id", "tag", "time", name="uq_readings_train_tag_time"),
+        Index("ix_readings_train_journal", "train_id", "id"),
+        {"sqlite_autoincrement": True},
+    )
+
+    id: Mapped[int] = mapped_column(_BIGID, primary_key=True, autoincrement=True)
+    train_id: Mapped[int] = mapped_column(ForeignKey("trains.id"))
+    tag: Mapped[str] = mapped_column(String(256))
+    time: Mapped[float] = mapped_column(Double)
+    value: Mapped[float] = mapped_column(Double)
+    quality: Mapped[int | None] = mapped_column(SmallInteger)
+    received_at: Mapped[float] = mapped_column(Double)
+
+
+class _Estimate(_Base):
+    __tablename__ = "estimates"
+
+    train_id: Mapped[int] = mapped_column(ForeignKey("trains.id"), primary_key=True)
+    time: Mapped[float] = mapped_column(Double, primary_key=True)
+    payload: Mapped[str] = mapped_column(Text)
+
+
+class _Gated(_Base):
+    __tablename__ = "gated_readings"
+    __table_args__ = (
+        UniqueConstraint(
+            "train_id", "tag", "sample_time", "value", name="uq_gated_train_tag_sample_value"
+        ),
+        Index("ix_gated_train_sample_time", "train_id", "sample_time"),
+        CheckConstraint("decision IN ('gated', 'step')", name="ck_gated_decision"),
+    )
+
+    id: Mapped[int] = mapped_column(_BIGID, primary_key=True, autoincrement=True)
+    train_id: Mapped[int] = mapped_column(ForeignKey("trains.id"))
+    tag: Mapped[str] = mapped_column(String(256))
+    time: Mapped[float] = mapped_column(Double)
+    sample_time: Mapped[float] = mapped_column(Double)
+    value: Mapped[float] = mapped_column(Double)
+    predicted: Mapped[float] = mapped_column(Double)
+    unit: Mapped[str] = mapped_column(String(64))
+    nis: Mapped[float] = mapped_column(Double)
+    reason: Mapped[str] = mapped_column(Text)
+    decision: Mapped[str] = mapped_column(String(8))
+
+
+class _Checkpoint(_Base):
+    __tablename__ = "checkpoints"
+    __table_args__ = (Index("ix_checkpoints_train_seq", "train_id", "journal_seq"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    train_id: Mapped[int] = mapped_column(ForeignKey("trains.id"))
+    journal_seq: Mapped[int] = mapped_column(BigInteger)
+    created_at: Mapped[float] = mapped_column(Double)
+    data: Mapped[bytes] = mapped_column(LargeBinary)
+
+
+class _ApiKey(_Base):
+    __tablename__ = "api_keys"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(128))
+    role: Mapped[str] = mapped_column(String(32))
+    key_hash: Mapped[str] = mapped_column(String(128), unique=True)
+    created_at: Mapped[float] = mapped_column(Double)
+    revoked_at: Mapped[float | None] = mapped_column(Double)
+
+
+# ---------------------------------------------------------------------------- records
+
+
+def _utc(seconds: float | None) -> datetime | None:
+    return None if seconds is None else datetime.fromtimestamp(seconds, UTC)
+
+
+@dataclass(frozen=True, slots=True)
+class TrainRecord:
+    """A stored train with its current config version.
+
+    Attributes
+    ----------
+    id : int
+        Train id, the key of its journal, estimates and checkpoints.
+    name, title : str
+        The train's slug and title.
+    version : int
+        Current config version (1 for the config it was created with).
+    config_json : str
+        The current validated config as JSON, quantities in SI.
+    source_text : str
+        The current config as it was posted (TOML or JSON text).
+    created_at : datetime
+        When the train was created (UTC).
+    retired_at : datetime or None
+        When it was retired (UTC); None while it is active.
+    """
+
+    id: int
+    name: str
+    title: str
+    version: int
+    config_json: str
+    source_text: str
+    created_at: datetime
+    retired_at: datetime | None
+
+    def train_config(self) -> TrainConfig:
+        """Return the current config, validated again from its stored JSON."""
+        return TrainConfig.model_validate_json(self.config_json)
+
+
+@dataclass(frozen=True, slots=True)
+class TrainVersion:
+    """One config version of a train: the JSON in SI, the posted text, when (UTC)."""
+
+    version: int
+    config_json: str
+    source_text: str
+    created_at: datetime
+
+
+@dataclass(frozen=True, slots=True)
+class AppendResult:
+    """What :meth:`Store.append_readings` did with each row of a batch.
+
+    Positions index the rows as passed.
+
+    Attributes
+    ----------
+    new_positions : tuple of int
+        Rows stored now, in ascending position.
+    new_ids : tuple of int
+        Journal id of each of those rows, in the same order.
+    duplicates : tuple of int
+        Rows identical (tag, time and value) to a stored reading, or to an earlier
+        row of the batch: nothing to do.
+    conflicts : tuple of int
+        Rows whose tag and time are stored with a different value: refused.
+    conflicting_values : tuple of float
+        The stored value each conflict met, in the same order as ``conflicts``.
+    """
+
+    new_positions: tuple[int, ...]
+    new_ids: tuple[int, ...]
+    duplicates: tuple[int, ...]
+    conflicts: tuple[int, ...]
+    conflicting_values: tuple[float, ...]
+
+
+class ReadingBatch(NamedTuple):
+    """Journal rows in journal order, as columns (unpacks as a 4-tuple).
+
+    Attributes
+    ----------
+    ids : ndarray of int64, shape (k,)
+        Journal ids, increasing.
+    tags : list of str, length k
+        Tag of each reading.
+    times : ndarray of float64, shape (k,)
+        Reading time [s since the epoch].
+    values : ndarray of float64, shape (k,)
+        Value in the tag's declared unit, as posted.
+    """
+
+    ids: IntArray
+    tags: list[str]
+    times: FloatArray
+    values: FloatArray
+
+
+class Checkpoint(NamedTuple):
+    """A stored session checkpoint: the last journal id it includes and its bytes."""
+
+    journal_seq: int
+    data: bytes
+
+
+class PruneCounts(NamedTuple):
+    """Rows :meth:`Store.prune` deleted, per table."""
+
+    readings: int
+    estimates: int
+    gated: int
+
+
+class GatedRow(TypedDict):
+    """A gated reading as :meth:`Store.read_gated` returns it (and upserts take it).
+
+    ``time`` is when the reading was stamped and ``sample_time`` when its sample
+    was taken [s since the epoch]; ``value`` and ``predicted`` are in ``unit``;
+    ``nis`` is the normalised innovation squared [-]; ``decision`` is ``"gated"``
+    (rejected) or ``"step"`` (taken as a real step after persistent gating).
+    """
+
+    tag: str
+    time: float
+    sample_time: float
+    value: float
+    predicted: float
+    unit: str
+    nis: float
+    reason: str
+    decision: str
+
+
+@dataclass(frozen=True, slots=True)
+class ApiKeyRecord:
+    """A stored API key (its hash, never the key), as ``service.auth`` reads it."""
+
+    id: int
+    name: str
+    role: str
+    key_hash: str
+    created_at: datetime
+    revoked_at: datetime | None
+
+
+# ---------------------------------------------------------------------------- errors
+
+
+def _unavailable_reason(exc: Exception) -> str:
+    original = getattr(exc, "orig", None)
+    text = str(original if original is not None else exc).strip()
+    text = text.splitlines()[0] if text else type(exc).__name__
+    low = text.lower()
+    if "locked" in low or "lock timeout" in low or "busy" in low:
+        return f"the database is locked by another writer ({text}); retry shortly"
+    if "full" in low or "no space" in low:
+        return f"the database's disk is full ({text}); free space, then retry"
+    return f"the database cannot be reached ({text})"
+
+
+def _guarded(method: Callable[_P, _R]) -> Callable[_P, _R]:
+    """Turn the driver's "cannot do it now" errors into :class:`StoreUnavailable`."""
+
+    @functools.wraps(method)
+    def wrapper(*args: _P.args, **kwargs: _P.kwargs) -> _R:
+        try:
+            return method(*args, **kwargs)
+        except (OperationalError, InterfaceError, PoolTimeoutError) as exc:
+            raise StoreUnavailable(_unavailable_reason(exc)) from exc
+        except DBAPIError as exc:
+            if exc.connection_invalidated:
+                raise StoreUnavailable(_unavailable_reason(exc)) from exc
+            raise
+
+    return wrapper
+
+
+# ---------------------------------------------------------------------------- store
+
+
+class Store:
+    """The service's database: SQLite file or PostgreSQL, one transaction per call.
+
+    Parameters
+    ----------
+    url : str
+        SQLAlchemy URL: ``sqlite:///path/to/file.db`` or
+        ``postgresql+psycopg://user@host:port/database`` (a bare ``postgresql://``
+        URL uses psycopg 3 too).
+    timeout : float, optional
+        How long to wait for a lock held by another writer (SQLite's busy timeout,
+        PostgreSQL's lock_timeout) or for a connection, before the call raises
+        :class:`StoreUnavailable` [s].
+    sqlite_synchronous : {"NORMAL", "FULL"}, optional
+        SQLite's ``synchronous`` setting (see the module notes).
+    clock : callable, optional
+        Returns the time for bookkeeping columns [s since the epoch]; ``time.time``.
+
+    Notes
+    -----
+    The constructor makes the engine and connects nowhere; :meth:`create_all`
+    makes any missing table. Call :meth:`close` (or use the store as a context
+    manager) to release the connections.
+    """
+
+    def __init__(
+        self,
+        url: str,
+        *,
+        timeout: float = 5.0,
+        sqlite_synchronous: Literal["NORMAL", "FULL"] = "NORMAL",
+        clock: Callable[[], float] = time.time,
+    ) -> None:
+        if not (math.isfinite(timeout) and timeout > 0):
+            raise ValueError(f"timeout must be a positive number of seconds, got {timeout!r}")
+        if sqlite_synchronous not in ("NORMAL", "FULL"):
+            raise ValueError(
+                f"sqlite_synchronous must be NORMAL or FULL, got {sqlite_synchronous!r}"
+            )
+        parsed = make_url(url)
+        backend = parsed.get_backend_name()
+        self._clock = clock
+        if backend == "sqlite":
+            self._engine = _sqlite_engine(parsed, timeout, sqlite_synchronous)
+        elif backend == "postgresql":
+            self._engine = _postgresql_engine(parsed, timeout)
+        else:
+            raise ValueError(
+                f"unsupported database URL {parsed.render_as_string(hide_password=True)!r}: "
+                "use sqlite:///<file> or postgresql+psycopg://<user>@<host>/<database>"
+            )
+        self._postgresql = backend == "postgresql"
+        self._writer = self._engine.execution_options(**{_WRITE: True})
+
+    @property
+    def engine(self) -> Engine:
+        """The SQLAlchemy engine (for migrations and diagnostics)."""
+        return self._engine
+
+    @property
+    def dialect(self) -> str:
+        """``"sqlite"`` or ``"postgresql"``."""
+        return "postgresql" if self._postgresql else "sqlite"
+
+    @_guarded
+    def create_all(self) -> None:
+        """Create every missing table and index (existing ones are left alone)."""
+        _Base.metadata.create_all(self._writer)
+
+    def close(self) -> None:
+        """Close every pooled connection."""
+        self._engine.dispose()
+
+    def __enter__(self) -> Store:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    @contextmanager
+    def _write(self) -> Iterator[Connection]:
+        with self._writer.begin() as conn:
+            yield conn
+
+    @contextmanager
+    def _read(self) -> Iterator[Connection]:
+        with self._engine.connect() as conn:
+            yield conn
+
+    def _insert(self, entity: type[_Base]) -> sqlite.Insert | postgresql.Insert:
+        if self._postgresql:
+            return postgresql.insert(entity)
+        return sqlite.insert(entity)
+
+    # ------------------------------------------------------------------ trains
+
+    @_guarded
+    def create_train(
+        self, name: str, title: str, config_json: str, source_text: str
+    ) -> TrainRecord:
+        """Store a new train with its first config version.
+
+        Parameters
+        ----------
+        name, title : str
+            The train's slug and title.
+        config_json : str
+            The validated config as JSON (``TrainConfig.model_dump_json()``).
+        source_text : str
+            The config as posted (TOML or JSON text).
+
+        Returns
+        -------
+        TrainRecord
+            The stored train, version 1.
+
+        Raises
+        ------
+        TrainExists
+            A train of that name is stored, active or retired.
+        """
+        now = self._clock()
+        try:
+            with self._write() as conn:
+                train_id = conn.execute(
+                    self._insert(_Train)
+                    .values(
+                        name=name, title=title, created_at=now, retired_at=None, current_version=1
+                    )
+                    .returning(_Train.id)
+                ).scalar_one()
+                conn.execute(
+                    self._insert(_TrainVersion).values(
+                        train_id=train_id,
+                        version=1,
+                        config_json=config_json,
+                        source_text=source_text,
+                        created_at=now,
+                    )
+                )
+        except IntegrityError:
+            raise TrainExists(f"a train named {name!r} is already stored") from None
+        return TrainRecord(train_id, name, title, 1, config_json, source_text, _utc_now(now), None)
+
+    @_guarded
+    def add_train_version(self, name: str, config_json: str, source_text: str) -> int:
+        """Store a new config version of an active train and make it current.
+
+        Returns
+        -------
+        int
+            The new version number.
+
+        Raises
+        ------
+        TrainNotFound
+            No active train of that name.
+        """
+        now = self._clock()
+        with self._write() as conn:
+            # One UPDATE picks the next number and locks the train row, so two
+            # concurrent changes get consecutive versions instead of a clash.
+            row = conn.execute(
+                update(_Train)
+                .where(_Train.name == name, _Train.retired_at.is_(None))
+                .values(current_version=_Train.current_version + 1)
+                .returning(_Train.id, _Train.current_version)
+            ).one_or_none()
+            if row is None:
+                raise TrainNotFound(f"no active train named {name!r}")
+            train_id, version = row
+            conn.execute(
+                self._insert(_TrainVersion).values(
+                    train_id=train_id,
+                    version=version,
+                    config_json=config_json,
+                    source_text=source_text,
+                    created_at=now,
+                )
+            )
+        return int(version)
+
+    def _train_select(self) -> Any:
+        return select(
+            _Train.id,
+            _Train.name,
+            _Train.title,
+            _Train.current_version,
+            _TrainVersion.config_json,
+            _TrainVersion.source_text,
+            _Train.created_at,
+            _Train.retired_at,
+        ).join(
+            _TrainVersion,
+            (_TrainVersion.train_id == _Train.id)
+            & (_TrainVersion.version == _Train.current_version),
+        )
+
+    @_guarded
+    def get_train(self, name: str) -> TrainRecord | None:
+        """Return the train of that name (active or retired), or None."""
+        with self._read() as conn:
+            row = conn.execute(self._train_select().where(_Train.name == name)).one_or_none()
+        return None if row is None else _train_record(row)
+
+    @_guarded
+    def list_trains(self, include_retired: bool = False) -> list[TrainRecord]:
+        """Return the active trains (and retired ones if asked), by name."""
+        query = self._train_select().order_by(_Train.name)
+        if not include_retired:
+            query = query.where(_Train.retired_at.is_(None))
+        with self._read() as conn:
+            return [_train_record(row) for row in conn.execute(query)]
+
+    @_guarded
+    def retire_train(self, name: str) -> None:
+        """Mark a train retired; its history stays. Retiring again keeps the first time.
+
+        Raises
+        ------
+        TrainNotFound
+            No train of that name.
+        """
+        now = self._clock()
+        with self._write() as conn:
+            result = conn.execute(
+                update(_Train)
+                .where(_Train.name == name)
+                .values(retired_at=func.coalesce(_Train.retired_at, now))
+            )
+            if result.rowcount == 0:
+                raise TrainNotFound(f"no train named {name!r}")
+
+    @_guarded
+    def train_versions(self, name: str) -> list[TrainVersion]:
+        """Return every config version of a train, oldest first.
+
+        Raises
+        ------
+        TrainNotFound
+            No train of that name.
+        """
+        with self._read() as conn:
+            train_id = conn.execute(
+                select(_Train.id).where(_Train.name == name)
+            ).scalar_one_or_none()
+            if train_id is None:
+                raise TrainNotFound(f"no train named {name!r}")
+            rows = conn.execute(
+                select(
+                    _TrainVersion.version,
+                    _TrainVersion.config_json,
+                    _TrainVersion.source_text,
+                    _TrainVersion.created_at,
+                )
+                .where(_TrainVersion.train_id == train_id)
+                .order_by(_TrainVersion.version)
+            ).all()
+        return [TrainVersion(v, c, s, _utc_now(t)) for v, c, s, t in rows]
+
+    # ------------------------------------------------------------------ journal
+
+    @_guarded
+    def append_readings(
+        self,
+        train_id: int,
+        rows: Sequence[tuple[str, float, float, int | None]],
+        received_at: float,
+    ) -> AppendResult:
+        """Journal a batch of readings; committed (durable) when this returns.
+
+        Parameters
+        ----------
+        train_id : int
+            The train's id.
+        rows : sequence of (tag, time, value, quality)
+            Time [s since the epoch], value in the tag's declared unit, quality a
+            source code (-32768..32767) or None.
+        received_at : float
+            When the batch arrived [s since the epoch].
+
+        Returns
+        -------
+        AppendResult
+            Which rows are new (with their journal ids), which repeat a stored
+            reading exactly, and which conflict with a stored value.
+
+        Raises
+        ------
+        ValueError
+            A time or value is not finite, or a quality does not fit in 16 bits.
+        TrainNotFound
+            No train has that id.
+
+        Notes
+        -----
+        One INSERT ... ON CONFLICT DO NOTHING RETURNING for the whole batch (a
+        multi-row VALUES on SQLite; on PostgreSQL a SELECT from ``unnest`` of one
+        array per column, a short statement the driver need not parse at length);
+        only when some rows were not inserted does a second statement read the
+        stored values to tell duplicates from conflicts. Journal ids increase but
+        may skip numbers (a refused insert can use one up). On PostgreSQL appends to one
+        train are serialised by an advisory lock, so journal ids become visible in
+        increasing order and a reader never skips an id committed later.
+        """
+        if not rows:
+            return AppendResult((), (), (), (), ())
+        tags: list[str] = []
+        times: list[float] = []
+        values: list[float] = []
+        qualities: list[int | None] = []
+        first: dict[tuple[str, float], int] = {}
+        for position, (tag, t, v, quality) in enumerate(rows):
+            t, v = float(t), float(v)
+            if not (math.isfinite(t) and math.isfinite(v)):
+                raise ValueError(
+                    f"reading {position} ({tag!r}): time and value must be finite, "
+                    f"got time {t!r}, value {v!r}"
+                )
+            if quality is not None and not _SMALLINT[0] <= quality <= _SMALLINT[1]:
+                raise ValueError(
+                    f"reading {position} ({tag!r}): quality must be -32768..32767, got {quality}"
+                )
+            first.setdefault((tag, t), position)
+            tags.append(tag)
+            times.append(t)
+            values.append(v)
+            qualities.append(quality)
+        try:
+            with self._write() as conn:
+                if self._postgresql:
+                    conn.execute(select(func.pg_advisory_xact_lock(_JOURNAL_LOCK_SPACE, train_id)))
+                    inserted = conn.execute(
+                        _PG_APPEND,
+                        {
+                            "train_id": train_id,
+                            "received_at": float(received_at),
+                            "tags": tags,
+                            "times": times,
+                            "values": values,
+                            "qualities": qualities,
+                        },
+                    ).all()
+                else:
+                    inserted = conn.execute(
+                        sqlite.insert(_Reading)
+                        .on_conflict_do_nothing(index_elements=["train_id", "tag", "time"])
+                        .returning(_Reading.id, _Reading.tag, _Reading.time),
+                        [
+                            {
+                                "train_id": train_id,
+                                "tag": tag,
+                                "time": t,
+                                "value": v,
+                                "quality": quality,
+                                "received_at": float(received_at),
+                            }
+                            for tag, t, v, quality in zip(
+                                tags, times, values, qualities, strict=True
+                            )
+                        ],
+                    ).all()
+                new = {first[(tag, t)]: int(journal_id) for journal_id, tag, t in inserted}
+                stored: dict[tuple[str, float], float] = {}
+                if len(new) < len(tags):
+                    missed = [i for i in range(len(tags)) if i not in new]
+                    stored = self._stored_values(
+                        conn, train_id, [tags[i] for i in missed], [times[i] for i in missed]
+                    )
+        except IntegrityError as exc:
+            if "foreign key" in str(exc.orig).lower():
+                raise TrainNotFound(f"no train with id {train_id}") from None
+            raise
+        positions = sorted(new)
+        duplicates: list[int] = []
+        conflicts: list[int] = []
+        conflicting: list[float] = []
+        for position, key in enumerate(zip(tags, times, strict=True)):
+            if position in new:
+                continue
+            value = stored[key]
+            if value == values[position]:
+                duplicates.append(position)
+            else:
+                conflicts.append(position)
+                conflicting.append(value)
+        return AppendResult(
+            tuple(positions),
+            tuple(new[i] for i in positions),
+            tuple(duplicates),
+            tuple(conflicts),
+            tuple(conflicting),
+        )
+
+    def _stored_values(
+        self, conn: Connection, train_id: int, tags: list[str], times: list[float]
+    ) -> dict[tuple[str, float], float]:
+        """Return the stored value of each (tag, time) key that has one, in one statement."""
+        if self._postgresql:
+            rows = conn.execute(
+                _PG_STORED, {"train_id": train_id, "tags": tags, "times": times}
+            ).all()
+        else:
+            # Two IN lists walk the unique index (a row-value IN scans the train's
+            # journal); the few extra rows they may match are ignored.
+            rows = conn.execute(
+                select(_Reading.tag, _Reading.time, _Reading.value).where(
+                    _Reading.train_id == train_id,
+                    _Reading.tag.in_(set(tags)),
+                    _Reading.time.in_(set(times)),
+                )
+            ).all()
+        return {(tag, t): value for tag, t, value in rows}
+
+    def readings_after(
+        self, train_id: int, journal_seq: int, *, batch_size: int = 10_000
+    ) -> Iterator[ReadingBatch]:
+        """Yield the journal after ``journal_seq`` in journal order, in batches.
+
+        Parameters
+        ----------
+        train_id : int
+            The train's id.
+        journal_seq : int
+            Last journal id already applied (0 for the whole journal).
+        batch_size : int, optional
+            Most readings per batch.
+
+        Yields
+        ------
+        ReadingBatch
+            (ids, tags, times, values) columns; every batch is non-empty.
+
+        Notes
+        -----
+        Each batch is read in its own short transaction (keyset paging on the
+        journal id), so a long replay holds no snapshot open and sees readings
+        appended while it runs.
+        """
+        if batch_size < 1:
+            raise ValueError(f"batch_size must be at least 1, got {batch_size}")
+        after = journal_seq
+        while True:
+            rows = self._journal_page(train_id, after, batch_size)
+            if not rows:
+                return
+            ids, tags, times, values = zip(*rows, strict=True)
+            yield ReadingBatch(
+                np.array(ids, dtype=np.int64),
+                list(tags),
+                np.array(times, dtype=np.float64),
+                np.array(values, dtype=np.float64),
+            )
+            if len(rows) < batch_size:
+                return
+            after = int(ids[-1])
+
+    @_guarded
+    def _journal_page(
+        self, train_id: int, after: int, limit: int
+    ) -> Sequence[tuple[int, str, float, float]]:
+        with self._read() as conn:
+            rows = conn.execute(
+                select(_Reading.id, _Reading.tag, _Reading.time, _Reading.value)
+                .where(_Reading.train_id == train_id, _Reading.id > after)
+                .order_by(_Reading.id)
+                .limit(limit)
+            ).all()
+        return [(r[0], r[1], r[2], r[3]) for r in rows]
+
+    # ------------------------------------------------------------------ estimates
+
+    @_guarded
+    def write_estimates(self, train_id: int, rows: Sequence[Mapping[str, Any]]) -> int:
+        """Store estimate rows, replacing any stored row at the same time.
+
+        Parameters
+        ----------
+        train_id : int
+            The train's id.
+        rows : sequence of mapping
+            JSON-ready rows, each with its time under ``"t"`` [s since the epoch];
+            the rest is stored as given. Within the batch the last row at a time
+            wins.
+
+        Returns
+        -------
+        int
+            Rows written.
+
+        Raises
+        ------
+        ValueError
+            A row has no finite ``"t"``, or holds NaN, infinity or something JSON
+            cannot encode (no NaN is ever stored).
+        """
+        by_time: dict[float, str] = {}
+        for k, row in enumerate(rows):
+            t = row.get("t")
+            if not isinstance(t, int | float) or not math.isfinite(t):
+                raise ValueError(f"estimate row {k}: 't' must be a finite time [s], got {t!r}")
+            try:
+                by_time[float(t)] = json.dumps(row, separators=(",", ":"), allow_nan=False)
+            except (TypeError, ValueError) as exc:
+                raise ValueError(f"estimate row {k} (t = {t!r}): {exc}") from None
+        if not by_time:
+            return 0
+        insert = self._insert(_Estimate)
+        statement = insert.on_conflict_do_update(
+            index_elements=["train_id", "time"], set_={"payload": insert.excluded.payload}
+        )
+        params = [{"train_id": train_id, "time": t, "payload": p} for t, p in by_time.items()]
+        with self._write() as conn:
+            conn.execute(statement, params)
+        return len(params)
+
+    @_guarded
+    def read_estimates(
+        self,
+        train_id: int,
+        start: float | None = None,
+        end: float | None = None,
+        every: float | None = None,
+    ) -> list[dict[str, Any]]:
+        """Return stored estimate rows with start <= time < end, oldest first.
+
+        Parameters
+        ----------
+        train_id : int
+            The train's id.
+        start, end : float or None
+            Range [s since the epoch]; None leaves that side open.
+        every : float or None
+            Downsampling interval [s]: only the last row in each interval
+            [n * every, (n + 1) * every) is returned, intervals counted from the
+            epoch so that they do not move with ``start``. None returns every row.
+
+        Returns
+        -------
+        list of dict
+            The rows as written by :meth:`write_estimates`.
+        """
+        where = [_Estimate.train_id == train_id, *_time_range(_Estimate.time, start, end)]
+        if every is None:
+            query = select(_Estimate.payload).where(*where).order_by(_Estimate.time)
+        else:
+            if not (math.isfinite(every) and every > 0):
+                raise ValueError(f"every must be a positive interval [s], got {every!r}")
+            bucket = self._floor(_Estimate.time / every)
+            last = (
+                select(func.max(_Estimate.time).label("time"))
+                .where(*where)
+                .group_by(bucket)
+                .subquery()
+            )
+            query = (
+                select(_Estimate.payload)
+                .join(last, _Estimate.time == last.c.time)
+                .where(_Estimate.train_id == train_id)
+                .order_by(_Estimate.time)
+            )
+        with self._read() as conn:
+            payloads = conn.execute(query).scalars().all()
+        return [json.loads(p) for p in payloads]
+
+    def _floor(self, x: ColumnElement[float]) -> ColumnElement[Any]:
+        # SQLAlchemy gives SQLite floor() as a Python function, called per row; the
+        # cast (toward zero) corrected for negative values is native and the same.
+        if self._postgresql:
+            return func.floor(x)
+        truncated = cast(x, Integer)
+        return truncated - case((x < truncated, 1), else_=0)
+
+    @_guarded
+    def latest_estimate(self, train_id: int) -> dict[str, Any] | None:
+        """Return the newest estimate row of a train, or None when it has none."""
+        with self._read() as conn:
+            payload = conn.execute(
+                select(_Estimate.payload)
+                .where(_Estimate.train_id == train_id)
+                .order_by(_Estimate.time.desc())
+                .limit(1)
+            ).scalar_one_or_none()
+        return None if payload is None else dict(json.loads(payload))
+
+    # ------------------------------------------------------------------ gated readings
+
+    @_guarded
+    def upsert_gated(self, train_id: int, records: Sequence[Mapping[str, Any]]) -> int:
+        """Store gated readings; one already stored (same tag, sample time, value) is updated.
+
+        Parameters
+        ----------
+        train_id : int
+            The train's id.
+        records : sequence of mapping
+            Each with the keys of :class:`GatedRow`; ``decision`` is ``"gated"`` or
+            ``"step"``. A reading re-run after a rewind comes back with its current
+            decision, reason and NIS, which replace the stored ones.
+
+        Returns
+        -------
+        int
+            Records written.
+
+        Raises
+        ------
+        ValueError
+            A record lacks a key or has an unknown decision.
+        """
+        by_key: dict[tuple[str, float, float], dict[str, Any]] = {}
+        for k, record in enumerate(records):
+            missing = [name for name in _GATED_FIELDS if name not in record]
+            if missing:
+                raise ValueError(f"gated record {k}: missing {', '.join(missing)}")
+            if record["decision"] not in _DECISIONS:
+                raise ValueError(
+                    f"gated record {k}: decision must be 'gated' or 'step', "
+                    f"got {record['decision']!r}"
+                )
+            row = {name: record[name] for name in _GATED_FIELDS}
+            row["train_id"] = train_id
+            by_key[(row["tag"], float(row["sample_time"]), float(row["value"]))] = row
+        if not by_key:
+            return 0
+        insert = self._insert(_Gated)
+        changed = ("time", "predicted", "unit", "nis", "reason", "decision")
+        statement = insert.on_conflict_do_update(
+            index_elements=["train_id", "tag", "sample_time", "value"],
+            set_={name: insert.excluded[name] for name in changed},
+        )
+        with self._write() as conn:
+            conn.execute(statement, list(by_key.values()))
+        return len(by_key)
+
+    @_guarded
+    def read_gated(
+        self, train_id: int, start: float | None = None, end: float | None = None
+    ) -> list[GatedRow]:
+        """Return gated readings with start <= sample time < end, oldest sample first.
+
+        Parameters
+        ----------
+        train_id : int
+            The train's id.
+        start, end : float or None
+            Range of sample times [s since the epoch]; None leaves that side open.
+        """
+        query = (
+            select(*(getattr(_Gated, name) for name in _GATED_FIELDS))
+            .where(_Gated.train_id == train_id, *_time_range(_Gated.sample_time, start, end))
+            .order_by(_Gated.sample_time, _Gated.tag, _Gated.id)
+        )
+        with self._read() as conn:
+            rows = conn.execute(query).all()
+        return [
+            GatedRow(
+                tag=r[0],
+                time=r[1],
+                sample_time=r[2],
+                value=r[3],
+                predicted=r[4],
+                unit=r[5],
+                nis=r[6],
+                reason=r[7],
+                decision=r[8],
+            )
+            for r in rows
+        ]
+
+    # ------------------------------------------------------------------ checkpoints
+
+    @_guarded
+    def save_checkpoint(self, train_id: int, journal_seq: int, data: bytes) -> None:
+        """Store a session checkpoint and drop all but the newest three of the train.
+
+        Parameters
+        ----------
+        train_id : int
+            The train's id.
+        journal_seq : int
+            The last journal id the checkpoint includes.
+        data : bytes
+            ``TrainSession.checkpoint()``.
+        """
+        with self._write() as conn:
+            conn.execute(
+                self._insert(_Checkpoint).values(
+                    train_id=train_id,
+                    journal_seq=journal_seq,
+                    created_at=self._clock(),
+                    data=bytes(data),
+                )
+            )
+            kept = (
+                select(_Checkpoint.id)
+                .where(_Checkpoint.train_id == train_id)
+                .order_by(_Checkpoint.journal_seq.desc(), _Checkpoint.id.desc())
+                .limit(CHECKPOINTS_KEPT)
+            )
+            conn.execute(
+                delete(_Checkpoint).where(
+                    _Checkpoint.train_id == train_id, _Checkpoint.id.not_in(kept.scalar_subquery())
+                )
+            )
+
+    @_guarded
+    def latest_checkpoint(self, train_id: int) -> Checkpoint | None:
+        """Return the checkpoint with the highest journal id, or None when there is none."""
+        with self._read() as conn:
+            row = conn.execute(
+                select(_Checkpoint.journal_seq, _Checkpoint.data)
+                .where(_Checkpoint.train_id == train_id)
+                .order_by(_Checkpoint.journal_seq.desc(), _Checkpoint.id.desc())
+                .limit(1)
+            ).one_or_none()
+        return None if row is None else Checkpoint(int(row[0]), bytes(row[1]))
+
+    # ------------------------------------------------------------------ retention
+
+    @_guarded
+    def prune(
+        self,
+        train_id: int,
+        readings_before: float | None = None,
+        estimates_before: float | None = None,
+    ) -> PruneCounts:
+        """Delete old history of a train.
+
+        Parameters
+        ----------
+        train_id : int
+            The train's id.
+        readings_before : float or None
+            Delete journal readings with time < this [s since the epoch], but only
+            those the latest checkpoint includes (journal id <= its journal_seq):
+            the readings a restart replays are never deleted. With no checkpoint no
+            reading is deleted. None keeps every reading.
+        estimates_before : float or None
+            Delete estimates with time < this, and gated readings with sample
+            time < this [s since the epoch]. None keeps them.
+
+        Returns
+        -------
+        PruneCounts
+            Rows deleted per table.
+        """
+        readings = estimates = gated = 0
+        with self._write() as conn:
+            if readings_before is not None:
+                seq = conn.execute(
+                    select(func.max(_Checkpoint.journal_seq)).where(
+                        _Checkpoint.train_id == train_id
+                    )
+                ).scalar_one_or_none()
+                if seq is not None:
+                    readings = conn.execute(
+                        delete(_Reading).where(
+                            _Reading.train_id == train_id,
+                            _Reading.id <= seq,
+                            _Reading.time < readings_before,
+                        )
+                    ).rowcount
+            if estimates_before is not None:
+                estimates = conn.execute(
+                    delete(_Estimate).where(
+                        _Estimate.train_id == train_id, _Estimate.time < estimates_before
+                    )
+                ).rowcount
+                gated = conn.execute(
+                    delete(_Gated).where(
+                        _Gated.train_id == train_id, _Gated.sample_time < estimates_before
+                    )
+                ).rowcount
+        return PruneCounts(readings, estimates, gated)
+
+    # ------------------------------------------------------------------ API keys
+
+    @_guarded
+    def add_api_key(self, name: str, role: str, key_hash: str) -> int:
+        """Store a key's hash under a name and role; return the key's id.
+
+        Raises
+        ------
+        ValueError
+            A key with that hash is already stored.
+        """
+        try:
+            with self._write() as conn:
+                key_id = conn.execute(
+                    self._insert(_ApiKey)
+                    .values(
+                        name=name,
+                        role=role,
+                        key_hash=key_hash,
+                        created_at=self._clock(),
+                        revoked_at=None,
+                    )
+                    .returning(_ApiKey.id)
+                ).scalar_one()
+        except IntegrityError:
+            raise ValueError("an API key with this hash is already stored") from None
+        return int(key_id)
+
+    @_guarded
+    def find_api_key_by_hash(self, key_hash: str) -> ApiKeyRecord | None:
+        """Return the key with this hash, revoked or not; None when there is none."""
+        with self._read() as conn:
+            row = conn.execute(_api_key_select().where(_ApiKey.key_hash == key_hash)).one_or_none()
+        return None if row is None else _api_key_record(row)
+
+    @_guarded
+    def revoke_api_key(self, key_id_or_name: int | str) -> bool:
+        """Revoke a key by id, or every valid key of a name; False when none was valid."""
+        match = (
+            _ApiKey.id == key_id_or_name
+            if isinstance(key_id_or_name, int)
+            else (_ApiKey.name == key_id_or_name)
+        )
+        with self._write() as conn:
+            result = conn.execute(
+                update(_ApiKey)
+                .where(match, _ApiKey.revoked_at.is_(None))
+                .values(revoked_at=self._clock())
+            )
+        return result.rowcount > 0
+
+    @_guarded
+    def list_api_keys(self) -> list[ApiKeyRecord]:
+        """Return every key, revoked ones included, by id."""
+        with self._read() as conn:
+            return [
+                _api_key_record(r) for r in conn.execute(_api_key_select().order_by(_ApiKey.id))
+            ]
+
+
+# ---------------------------------------------------------------------------- helpers
+
+
+def _utc_now(seconds: float) -> datetime:
+    return datetime.fromtimestamp(seconds, UTC)
+
+
+def _train_record(row: Any) -> TrainRecord:
+    train_id, name, title, version, config_json, source_text, created, retired = row
+    return TrainRecord(
+        train_id, name, title, version, config_json, source_text, _utc_now(created), _utc(retired)
+    )
+
+
+def _api_key_select() -> Any:
+    return select(
+        _ApiKey.id,
+        _ApiKey.name,
+        _ApiKey.role,
+        _ApiKey.key_hash,
+        _ApiKey.created_at,
+        _ApiKey.revoked_at,
+    )
+
+
+def _api_key_record(row: Any) -> ApiKeyRecord:
+    key_id, name, role, key_hash, created, revoked = row
+    return ApiKeyRecord(key_id, name, role, key_hash, _utc_now(created), _utc(revoked))
+
+
+def _time_range(column: Any, start: float | None, end: float | None) -> list[ColumnElement[bool]]:
+    where: list[ColumnElement[bool]] = []
+    if start is not None:
+        where.append(column >= start)
+    if end is not None:
+        where.append(column < end)
+    return where
+
+
+def _sqlite_engine(url: URL, timeout: float, synchronous: str) -> Engine:
+    engine = create_engine(
+        url,
+        connect_args={"timeout": timeout, "check_same_thread": False},
+        pool_timeout=timeout,
+    )
+    busy_ms = int(timeout * 1000)
+
+    @event.listens_for(engine, "connect")
+    def _configure(dbapi_connection: Any, _record: Any) -> None:
+        # The driver's own transaction handling would BEGIN only before DML and
+        # never IMMEDIATE; the "begin" hook below takes over.
+        dbapi_connection.isolation_level = None
+        cursor = dbapi_connection.cursor()
+        try:
+            cursor.execute(f"PRAGMA busy_timeout = {busy_ms}")
+            cursor.execute("PRAGMA journal_mode = WAL")
+            cursor.execute(f"PRAGMA synchronous = {synchronous}")
+            cursor.execute("PRAGMA foreign_keys = ON")
+        finally:
+            cursor.close()
+
+    @event.listens_for(engine, "begin")
+    def _begin(conn: Connection) -> None:
+        # A writer takes the write lock at BEGIN, waiting up to the busy timeout;
+        # a deferred BEGIN that upgrades later can fail at once with "locked"
+        # whatever the timeout. Readers stay deferred and never block in WAL.
+        immediate = conn.get_execution_options().get(_WRITE, False)
+        conn.exec_driver_sql("BEGIN IMMEDIATE" if immediate else "BEGIN")
+
+    return engine
+
+
+def _postgresql_engine(url: URL, timeout: float) -> Engine:
+    if url.drivername == "postgresql":
+        url = url.set(drivername="postgresql+psycopg")
+    return create_engine(
+        url,
+        pool_pre_ping=True,
+        pool_timeout=timeout,
+        connect_args={
+            "connect_timeout": max(1, math.ceil(timeout)),
+            "options": f"-c lock_timeout={int(timeout * 1000)}",
+        },
+    )
