@@ -13,7 +13,7 @@ PYTHON ?= python3
 # estimator package keys its cache folder on a digest of its sources below this.
 export STAGEWATCH_CACHE_DIR := $(CURDIR)/.cache
 
-.PHONY: help venv run test bench lint clean
+.PHONY: help venv run demo test bench lint clean
 
 help: ## List the targets
 	@echo "stagewatch make targets:"
@@ -27,15 +27,22 @@ $(STAMP): pyproject.toml
 
 venv: $(STAMP) ## Create .venv and install stagewatch with its dev extras
 
-run: $(STAMP) ## Simulate and estimate a short invented scenario; print estimates beside truth
+run: $(STAMP) ## Replay the demo month (replay_data/wrenfield) into out/wrenfield; print where the report is
+	$(BIN)/stagewatch replay replay_data/wrenfield/archive.parquet \
+		--config replay_data/wrenfield/train.toml \
+		--truth replay_data/wrenfield/truth.parquet --out out/wrenfield
+	@echo "Open out/wrenfield/report.html in a browser."
+
+demo: $(STAMP) ## Simulate and estimate a short invented scenario; print estimates beside truth
 	$(BIN)/stagewatch demo
 
 test: $(STAMP) ## Install missing system packages (if any), then run the whole test suite
 	bash scripts/system-deps.sh
 	$(BIN)/pytest
 
-bench: $(STAMP) ## Time the filter against the reference implementation
+bench: $(STAMP) ## Time the filter against its reference, then replay a month and a year of data
 	$(BIN)/python bench/bench_filter.py
+	$(BIN)/python bench/bench_replay.py
 
 lint: $(STAMP) ## ruff check, then mypy
 	$(BIN)/ruff check estimator service tests bench

@@ -12,7 +12,7 @@ input problem (a missing file, an invalid train configuration).
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Any
 
 import typer
 
@@ -306,6 +306,218 @@ def simulate_command(
         f"{_plural(len(readings.names), 'tag')}, {form} form ({_size(archive_path)})"
     )
     typer.echo(f"wrote {truth_path}: {rows:,} rows every {truth_every:g} s ({_size(truth_path)})")
+
+
+@app.command(
+    name="replay",
+    help=(
+        "Replay an archive (CSV or Parquet, long or wide form) through the estimator; "
+        "write the estimates, gated and refused readings, and a report into DIR."
+    ),
+)
+def replay_command(
+    archive: Annotated[
+        Path,
+        typer.Argument(metavar="ARCHIVE", help="Archive file: .csv, .csv.gz or .parquet."),
+    ],
+    config: Annotated[
+        Path, typer.Option("--config", metavar="TRAIN.toml", help="Train configuration file.")
+    ],
+    out: Annotated[Path, typer.Option("--out", metavar="DIR", help="Folder to write into.")],
+    truth: Annotated[
+        Path | None,
+        typer.Option(
+            "--truth", metavar="FILE", help="Truth of a simulated run, to score the estimates."
+        ),
+    ] = None,
+    chunk_hours: Annotated[
+        float, typer.Option(help="Hours of arrival time handed to the estimator at once.")
+    ] = 24.0,
+    quiet: Annotated[bool, typer.Option("--quiet", help="Show no progress bar.")] = False,
+    ignore_unknown: Annotated[
+        bool,
+        typer.Option(
+            "--ignore-unknown",
+            help="Skip (and count) readings of tags the train does not have, instead of stopping.",
+        ),
+    ] = False,
+) -> None:
+    """Replay an archive through the estimator and print its key figures.
+
+    Parameters
+    ----------
+    archive : pathlib.Path
+        The archive (see :func:`service.replay.replay`).
+    config : pathlib.Path
+        The train's TOML file.
+    out : pathlib.Path
+        Folder for ``estimates.parquet``/``.csv``, ``gated.csv``, ``steps.csv``,
+        ``refused.csv``, ``summary.json``, ``report.html`` and ``plots/``.
+    truth : pathlib.Path, optional
+        Truth file (wide: ``time``, ``<vessel>.<species>`` [mol/m^3], ``activity``).
+    chunk_hours : float
+        Chunk of arrival time per session call [h].
+    quiet : bool
+        Hide the progress bar.
+    ignore_unknown : bool
+        Skip readings of unknown tags instead of refusing the archive.
+
+    Raises
+    ------
+    typer.Exit
+        Status 2 for bad input (a missing file, an invalid train, an unreadable
+        archive, a missing column, unknown tags), on one line; status 1 when
+        writing fails.
+    """
+    import math
+
+    if not (math.isfinite(chunk_hours) and chunk_hours > 0):
+        raise _fail(f"error: --chunk-hours must be a positive number of hours, got {chunk_hours}")
+    for path in (archive, config, truth):
+        if path is not None and not path.is_file():
+            what = "is not a file" if path.exists() else "does not exist"
+            raise _fail(f"error: {path} {what}")
+
+    from estimator.config import load_train_config
+    from estimator.errors import ConfigError
+    from service.archive import ArchiveError
+    from service.replay import replay as run_replay
+
+    try:
+        train = load_train_config(config)
+    except ConfigError as exc:
+        raise _fail(_problem_lines(exc)) from None
+    try:
+        summary = run_replay(
+            archive,
+            train,
+            out,
+            truth=truth,
+            chunk_seconds=chunk_hours * 3600.0,
+            progress=not quiet,
+            ignore_unknown=ignore_unknown,
+        )
+    except ArchiveError as exc:
+        raise _fail("error: " + " ".join(str(exc).split())) from None
+    except OSError as exc:
+        raise _fail(f"error: cannot write into {out}: {exc.strerror or exc}", code=1) from None
+    for line in _replay_lines(summary):
+        typer.echo(line)
+
+
+def _replay_lines(summary: Any) -> list[str]:
+    """Return the key figures of a replay (a ``ReplaySummary``), one line each, for people."""
+    s = summary
+
+    def nis(name: str, stats: Any) -> str:
+        where = "inside" if stats.inside else "OUTSIDE"
+        return (
+            f"{name}: {stats.mean:.3f} per dof over {stats.dof:,} dof, 95 % interval "
+            f"[{stats.low:.3f}, {stats.high:.3f}]: {where}"
+        )
+
+    lines = [
+        f"replayed {s.train}: {s.readings:,} readings ({s.form} form, ordered by "
+        f"{s.ordered_by}), {s.time_steps:,} estimate times in {s.elapsed:.1f} s "
+        f"({s.steps_per_second:,.0f}/s)",
+        f"archive: {s.unsorted:,} unsorted, {s.duplicates:,} duplicate, "
+        f"{s.conflicts:,} conflicting, {s.unknown:,} of unknown tags, {s.refused:,} refused",
+        f"gated: {s.gated:,} of {s.measurement_readings:,} analyzer and lab readings "
+        f"({100 * s.gated_share:.2f} %); {_plural(s.steps, 'reading')} taken as a step",
+    ]
+    if s.nis is not None and s.nis.dof:
+        lines.append(nis("NIS, all updates", s.nis))
+        lines += [nis(f"NIS, {tag}", stats) for tag, stats in s.nis_by_tag.items() if stats.dof]
+    if s.accuracy:
+        lines.append(
+            f"RMSE against the truth after {s.warm_up / 3600:.2f} h warm-up, as a share of "
+            f"the mean feed reactant ({s.feed_reactant_mean:.4g} mol/m^3):"
+        )
+        for a in s.accuracy:
+            kind = "measured" if a.measured else "estimated"
+            lines.append(
+                f"  {a.vessel} {a.species}: {a.rmse:.3g} mol/m^3 ({100 * a.share:.2f} %), {kind}"
+            )
+    if s.activity_rmse is not None:
+        lines.append(
+            f"activity: RMSE {s.activity_rmse:.3g}, largest error {s.activity_max_error:.3g}"
+        )
+    for lab in s.lab:
+        lines.append(
+            f"lab {lab.tag} ({lab.species} in {lab.vessel}): {lab.count} results, "
+            f"RMSE {lab.rmse:.3g} mol/m^3, bias {lab.bias:+.3g} mol/m^3"
+        )
+    report = s.files.get("report")
+    lines.append(f"report: {report}" if report else f"files: {s.out}")
+    return lines
+
+
+@app.command(help="Run the REST service (uvicorn, one worker).")
+def serve(
+    host: Annotated[str | None, typer.Option(help="Address to listen on.")] = None,
+    port: Annotated[int | None, typer.Option(help="TCP port.")] = None,
+    train: Annotated[
+        list[Path] | None,
+        typer.Option(help="Train TOML to register at start if no train of its name exists."),
+    ] = None,
+) -> None:
+    """Run the service until interrupted; checkpoints every train on the way out.
+
+    Refuses to listen on a non-loopback address unless API keys exist.
+    """
+    from service.settings import SettingsError, UnsafeBinding, check_listen_safety, load_settings
+
+    try:
+        overrides: dict[str, Any] = {}
+        if host is not None:
+            overrides["host"] = host
+        if port is not None:
+            overrides["port"] = port
+        settings = load_settings(**overrides)
+    except SettingsError as exc:
+        raise _fail(f"error: {exc}") from None
+
+    import uvicorn
+
+    from service.app import _open_store, create_app
+
+    store = _open_store(settings)
+    keys = any(k.revoked_at is None for k in store.list_api_keys())
+    try:
+        check_listen_safety(settings, keys_configured=keys)
+    except UnsafeBinding as exc:
+        store.close()
+        raise _fail(f"error: {exc}") from None
+    for path in train or []:
+        _register_train(store, path)
+    app_ = create_app(settings, store=store)
+    typer.echo(f"stagewatch: API docs at http://{settings.host}:{settings.port}/docs", err=True)
+    try:
+        uvicorn.run(app_, host=settings.host, port=settings.port, log_level="warning")
+    finally:
+        store.close()
+
+
+def _register_train(store: Any, path: Path) -> None:
+    """Register a train file unless a train of its name is already stored."""
+    from estimator.config import load_train_config
+    from estimator.errors import ConfigError
+
+    try:
+        config = load_train_config(path)
+    except ConfigError as exc:
+        raise _fail(str(exc)) from None
+    if store.get_train(config.name) is None:
+        store.create_train(config.name, config.title, config.model_dump_json(), path.read_text())
+
+
+def _add_keys_commands() -> None:
+    from service.keys_cli import keys_app
+
+    app.add_typer(keys_app, name="keys", help="Create, list and revoke API keys.")
+
+
+_add_keys_commands()
 
 
 def main() -> None:
