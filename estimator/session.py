@@ -15,6 +15,7 @@ change it any more.
 
 from __future__ import annotations
 
+import hashlib
 import io
 import math
 from collections.abc import Sequence
@@ -168,6 +169,7 @@ class TrainSession:
         buffer = io.BytesIO()
         arrays = self.filter.state_arrays()
         arrays["format"] = np.array(_CHECKPOINT_FORMAT)
+        arrays["config"] = np.array(_fingerprint(self.config))
         np.savez_compressed(buffer, **arrays)  # type: ignore[arg-type]  # stub types kwds as bool
         return buffer.getvalue()
 
@@ -189,6 +191,8 @@ class TrainSession:
             raise ValueError(f"not a session checkpoint: {exc}") from None
         if int(arrays.pop("format", -1)) != _CHECKPOINT_FORMAT:
             raise ValueError("session checkpoint of another format version")
+        if str(arrays.pop("config", "")) != _fingerprint(config):
+            raise ValueError("session checkpoint of another train configuration")
         session.filter.load_state(arrays)
         return session
 
@@ -340,6 +344,11 @@ class TrainSession:
             [ev["time"][rows], ev["nis"][rows], counts.astype(float), group[first].astype(float)]
         )
         return gated, steps, nis_rows[np.argsort(nis_rows[:, 0], kind="stable")]
+
+
+def _fingerprint(config: TrainConfig) -> str:
+    """Digest the train description: a checkpoint is only valid for its own."""
+    return hashlib.sha256(config.model_dump_json().encode()).hexdigest()
 
 
 class RevisionBuffer:

@@ -161,3 +161,14 @@ def test_checkpoint_and_restore_continue_exactly():
 def test_restore_refuses_bytes_that_are_not_a_checkpoint():
     with pytest.raises(ValueError, match="not a session checkpoint"):
         TrainSession.restore(demo_session().config, b"hello")
+
+
+def test_restore_refuses_a_checkpoint_of_another_configuration():
+    session = demo_session()
+    sim = feed_step_readings(hours=1.0)
+    session.ingest(*sim.columns(), si=True)
+    other = session.config.model_copy(
+        update={"reaction": session.config.reaction.model_copy(update={"k_ref": 1e-4})}
+    )
+    with pytest.raises(ValueError, match="another train configuration"):
+        TrainSession.restore(other, session.checkpoint())

@@ -1,0 +1,349 @@
+"""The REST service: FastAPI app factory and routes under /api/v1.
+
+``create_app(settings)`` builds the app; the store and the hub (every train's
+session) are made in the lifespan, so importing this module is cheap. Handlers are
+plain ``def`` where they touch the database or a session (FastAPI runs them in its
+thread pool) and ``async`` only for the live stream.
+
+Roles: read (estimates, trains, gated readings), ingest (post readings), admin
+(create, update and retire trains). /healthz and /readyz answer without a key.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import csv
+import io
+import json
+import logging
+import time
+import tomllib
+from collections.abc import AsyncIterator, Iterator
+from contextlib import asynccontextmanager
+from typing import Annotated, Any, Literal
+
+from fastapi import FastAPI, Header, HTTPException, Query, Request, Response, status
+from fastapi.responses import JSONResponse
+from fastapi.sse import EventSourceResponse, ServerSentEvent
+
+from estimator.config import TrainConfig, parse_train_config
+from estimator.errors import ConfigError
+from estimator.model import TrainModel
+from estimator.observability import observability_report
+from service.auth import AdminAccess, IngestAccess, ReadAccess
+from service.hub import Hub, Runtime, UnknownTrain, estimate_public
+from service.schemas import (
+    EstimatePublic,
+    EstimatesPublic,
+    GatedListPublic,
+    GatedPublic,
+    IngestResult,
+    ObservabilityPublic,
+    ReadingsIn,
+    TrainIn,
+    TrainPublic,
+    TrainsPublic,
+)
+from service.settings import Settings
+from service.store import Store, StoreUnavailable
+
+log = logging.getLogger("stagewatch.app")
+
+API = "/api/v1"
+NOT_SAFETY = (
+    "stagewatch is a monitoring aid, not a safety system: follow site procedures, "
+    "local codes and licensed engineering practice."
+)
+
+
+def create_app(settings: Settings | None = None, *, store: Store | None = None) -> FastAPI:
+    """Build the service.
+
+    Parameters
+    ----------
+    settings : Settings, optional
+        Service settings; read from the environment and settings file when omitted.
+    store : Store, optional
+        An open store to use instead of opening ``settings.database_url``.
+    """
+    settings = settings or Settings()
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        own = store is None
+        db = store or _open_store(settings)
+        hub = Hub(db, settings)
+        app.state.settings = settings
+        app.state.store = db
+        app.state.keys = db
+        app.state.hub = hub
+        await asyncio.to_thread(hub.start)
+        try:
+            yield
+        finally:
+            await asyncio.to_thread(hub.stop)
+            if own:
+                db.close()
+
+    app = FastAPI(
+        title="stagewatch",
+        version="0.1.0",
+        description=(
+            "Soft sensor and state estimator for cascades of stirred-tank reactors. " + NOT_SAFETY
+        ),
+        lifespan=lifespan,
+    )
+
+    @app.exception_handler(UnknownTrain)
+    async def unknown_train(_: Request, exc: UnknownTrain) -> JSONResponse:
+        return JSONResponse({"detail": f"no train named {exc.args[0]!r}"}, status_code=404)
+
+    @app.exception_handler(StoreUnavailable)
+    async def store_unavailable(_: Request, exc: StoreUnavailable) -> JSONResponse:
+        return JSONResponse(
+            {"detail": f"storage unavailable, nothing was accepted: {exc}"},
+            status_code=503,
+            headers={"Retry-After": "5"},
+        )
+
+    @app.get("/healthz", tags=["operations"])
+    def get_health() -> dict[str, str]:
+        """Answer while the process is up."""
+        return {"status": "ok"}
+
+    @app.get("/readyz", tags=["operations"])
+    def get_ready(request: Request) -> JSONResponse:
+        """Answer 200 once every train is loaded."""
+        hub: Hub | None = getattr(request.app.state, "hub", None)
+        ready = bool(hub and hub.ready)
+        return JSONResponse(
+            {"status": "ready" if ready else "starting"},
+            status_code=200 if ready else 503,
+        )
+
+    @app.post(f"{API}/trains", status_code=201, tags=["trains"])
+    def create_train(body: TrainIn, request: Request, _: AdminAccess) -> TrainPublic:
+        """Register a train from its TOML text or JSON document."""
+        config, source = _parse_train(body)
+        hub = _hub(request)
+        if config.name in hub.trains or hub.store.get_train(config.name) is not None:
+            raise HTTPException(409, f"a train named {config.name!r} exists; PUT to change it")
+        return _train_public(hub.create(config, source))
+
+    @app.get(f"{API}/trains", tags=["trains"])
+    def list_trains(request: Request, _: ReadAccess) -> TrainsPublic:
+        """List every running train."""
+        data = [_train_public(r) for r in _hub(request).trains.values()]
+        return TrainsPublic(data=data, count=len(data))
+
+    @app.get(f"{API}/trains/{{name}}", tags=["trains"])
+    def read_train(name: str, request: Request, _: ReadAccess) -> TrainPublic:
+        """Return one train's description and state."""
+        return _train_public(_hub(request).get(name))
+
+    @app.put(f"{API}/trains/{{name}}", tags=["trains"])
+    def update_train(name: str, body: TrainIn, request: Request, _: AdminAccess) -> TrainPublic:
+        """Change a train's description: a new version, history kept."""
+        config, source = _parse_train(body)
+        if config.name != name:
+            raise HTTPException(422, f"train.name is {config.name!r}, the path says {name!r}")
+        return _train_public(_hub(request).update(name, config, source))
+
+    @app.delete(f"{API}/trains/{{name}}", status_code=204, tags=["trains"])
+    def retire_train(name: str, request: Request, _: AdminAccess) -> Response:
+        """Stop estimating a train; its history stays."""
+        _hub(request).retire(name)
+        return Response(status_code=204)
+
+    @app.post(f"{API}/trains/{{name}}/readings", tags=["readings"])
+    def post_readings(
+        name: str, body: ReadingsIn, request: Request, _: IngestAccess
+    ) -> IngestResult:
+        """Post a batch of readings (any order); each refused one comes back with its reason."""
+        if len(body.readings) > settings.max_batch:
+            raise HTTPException(413, f"at most {settings.max_batch} readings per request")
+        readings = body.readings
+        return _hub(request).ingest(
+            name,
+            [r.tag for r in readings],
+            [r.time for r in readings],
+            [r.value for r in readings],
+            [r.quality for r in readings],
+            now=time.time(),
+        )
+
+    @app.get(f"{API}/trains/{{name}}/estimates/latest", tags=["estimates"])
+    def read_latest(name: str, request: Request, _: ReadAccess) -> EstimatePublic:
+        """Return the newest estimate."""
+        runtime = _hub(request).get(name)
+        if runtime.latest is None:
+            raise HTTPException(404, "no estimate yet: the train has not had its inputs")
+        return EstimatePublic.model_validate(estimate_public(runtime.config, runtime.latest))
+
+    @app.get(f"{API}/trains/{{name}}/estimates", tags=["estimates"], response_model=None)
+    def read_estimates(
+        name: str,
+        request: Request,
+        _: ReadAccess,
+        start: Annotated[float | None, Query(description="Epoch seconds [s]")] = None,
+        end: Annotated[float | None, Query(description="Epoch seconds [s]")] = None,
+        every: Annotated[float | None, Query(gt=0, description="Downsample interval [s]")] = None,
+        format: Literal["json", "csv"] = "json",
+    ) -> EstimatesPublic | Response:
+        """Return estimates over a time range, optionally one per interval, as JSON or CSV."""
+        hub = _hub(request)
+        runtime = hub.get(name)
+        rows = hub.store.read_estimates(runtime.train_id, start, end, every)
+        if format == "csv":
+            return Response(_estimates_csv(runtime.config, rows), media_type="text/csv")
+        data = [EstimatePublic.model_validate(estimate_public(runtime.config, r)) for r in rows]
+        return EstimatesPublic(data=data, count=len(data))
+
+    @app.get(f"{API}/trains/{{name}}/gated", tags=["estimates"])
+    def read_gated(
+        name: str,
+        request: Request,
+        _: ReadAccess,
+        start: float | None = None,
+        end: float | None = None,
+    ) -> GatedListPublic:
+        """List readings rejected at the innovation gate, or taken as steps, with reasons."""
+        hub = _hub(request)
+        rows = hub.store.read_gated(hub.get(name).train_id, start, end)
+        data = [GatedPublic.model_validate(r) for r in rows]
+        return GatedListPublic(data=data, count=len(data))
+
+    @app.get(f"{API}/trains/{{name}}/observability", tags=["trains"])
+    def read_observability(name: str, request: Request, _: ReadAccess) -> ObservabilityPublic:
+        """Report which states the measurements determine, and what to add if not."""
+        runtime = _hub(request).get(name)
+        report = observability_report(TrainModel.from_config(runtime.config))
+        return ObservabilityPublic(
+            observable=report.observable,
+            rank=report.rank,
+            n_states=report.n_states,
+            unobservable=list(report.unobservable),
+            suggestions=list(report.suggestions),
+            message=report.message(),
+        )
+
+    @app.get(
+        f"{API}/trains/{{name}}/stream", tags=["estimates"], response_class=EventSourceResponse
+    )
+    async def stream_estimates(
+        name: str,
+        request: Request,
+        _: ReadAccess,
+        last_event_id: Annotated[str | None, Header()] = None,
+    ) -> AsyncIterator[ServerSentEvent]:
+        """Stream live estimates as server-sent events; resume with Last-Event-ID (a time)."""
+        hub = _hub(request)
+        runtime = hub.get(name)
+        queue = hub.subscribe(name)
+        try:
+            sent = -float("inf")
+            if last_event_id is not None:
+                try:
+                    sent = float(last_event_id)
+                except ValueError:
+                    raise HTTPException(422, "Last-Event-ID must be an estimate time") from None
+                missed = await asyncio.to_thread(
+                    hub.store.read_estimates, runtime.train_id, sent, None, None
+                )
+                for row in missed:
+                    if row["t"] > sent:
+                        yield _event(runtime, row)
+                        sent = row["t"]
+            while True:
+                row = await queue.get()
+                if row["t"] > sent or last_event_id is None:
+                    yield _event(runtime, row)
+                    sent = max(sent, row["t"])
+        finally:
+            hub.unsubscribe(name, queue)
+
+    return app
+
+
+def _event(runtime: Runtime, row: dict[str, Any]) -> ServerSentEvent:
+    return ServerSentEvent(
+        data=estimate_public(runtime.config, row), event="estimate", id=repr(row["t"])
+    )
+
+
+def _hub(request: Request) -> Hub:
+    hub: Hub = request.app.state.hub
+    return hub
+
+
+def _open_store(settings: Settings) -> Store:
+    url = settings.database_url
+    if url.startswith("sqlite:///"):
+        from pathlib import Path
+
+        Path(url.removeprefix("sqlite:///")).parent.mkdir(parents=True, exist_ok=True)
+    db = Store(url)
+    db.create_all()
+    return db
+
+
+def _parse_train(body: TrainIn) -> tuple[TrainConfig, str]:
+    """Validate a posted TOML text or JSON document (422 with every problem)."""
+    if (body.toml is None) == (body.config is None):
+        raise HTTPException(422, "give the train as either 'toml' text or a 'config' document")
+    try:
+        if body.toml is not None:
+            try:
+                data = tomllib.loads(body.toml)
+            except tomllib.TOMLDecodeError as exc:
+                raise HTTPException(422, [{"loc": ["body", "toml"], "msg": str(exc)}]) from None
+            return parse_train_config(data, source="posted TOML"), body.toml
+        assert body.config is not None
+        return parse_train_config(body.config, source="posted config"), json.dumps(body.config)
+    except ConfigError as exc:
+        detail = [{"loc": ["body", *p.key.split(".")], "msg": p.reason} for p in exc.problems]
+        raise HTTPException(status.HTTP_422_UNPROCESSABLE_CONTENT, detail) from None
+
+
+def _train_public(runtime: Runtime) -> TrainPublic:
+    cfg = runtime.config
+    return TrainPublic(
+        name=cfg.name,
+        title=cfg.title,
+        version=runtime.version,
+        retired=False,
+        vessels=[v.name for v in cfg.vessels],
+        species=list(cfg.species),
+        tags=list(runtime.session.tags),
+        last_estimate_time=None if runtime.latest is None else runtime.latest["t"],
+    )
+
+
+def _estimates_csv(config: TrainConfig, rows: list[dict[str, Any]]) -> str:
+    out = io.StringIO()
+    writer = csv.writer(out)
+    header = ["time"]
+    for vessel in config.vessels:
+        for s in config.species:
+            header += [f"{vessel.name}.{s}", f"{vessel.name}.{s}.std"]
+        header += [
+            f"{vessel.name}.conversion",
+            f"{vessel.name}.conversion_std",
+            f"{vessel.name}.design_conversion",
+        ]
+    header += ["activity", "activity.std", "flow"]
+    writer.writerow(header)
+    for row in _csv_rows(config, rows):
+        writer.writerow(row)
+    return out.getvalue()
+
+
+def _csv_rows(config: TrainConfig, rows: list[dict[str, Any]]) -> Iterator[list[float]]:
+    for r in rows:
+        line = [r["t"]]
+        for i in range(len(config.vessels)):
+            for j in range(len(config.species)):
+                line += [r["c"][i][j], r["cs"][i][j]]
+            line += [r["x"][i], r["xs"][i], r["xd"][i]]
+        line += [r["a"], r["as"], r["q"]]
+        yield line
