@@ -523,3 +523,7 @@ _add_keys_commands()
 def main() -> None:
     """Run the command line (the ``stagewatch`` console script)."""
     app()
+
+
+if __name__ == "__main__":
+    main()
