@@ -33,6 +33,7 @@ from estimator.model import TrainModel
 from estimator.observability import observability_report
 from service.auth import AdminAccess, IngestAccess, ReadAccess
 from service.hub import Hub, Runtime, UnknownTrain, estimate_public
+from service.metrics import configure_logging
 from service.schemas import (
     EstimatePublic,
     EstimatesPublic,
@@ -68,6 +69,7 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
         An open store to use instead of opening ``settings.database_url``.
     """
     settings = settings or Settings()
+    configure_logging(settings.log_json)
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
@@ -106,6 +108,14 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
             status_code=503,
             headers={"Retry-After": "5"},
         )
+
+    @app.get("/metrics", tags=["operations"], response_class=Response)
+    def get_metrics(request: Request, _: ReadAccess) -> Response:
+        """Prometheus text: readings by outcome, estimates, ingest latency, estimate age."""
+        from prometheus_client import CONTENT_TYPE_LATEST, generate_latest
+
+        hub = _hub(request)
+        return Response(generate_latest(hub.metrics.registry), media_type=CONTENT_TYPE_LATEST)
 
     @app.get("/healthz", tags=["operations"])
     def get_health() -> dict[str, str]:
@@ -164,14 +174,16 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
         if len(body.readings) > settings.max_batch:
             raise HTTPException(413, f"at most {settings.max_batch} readings per request")
         readings = body.readings
-        return _hub(request).ingest(
-            name,
-            [r.tag for r in readings],
-            [r.time for r in readings],
-            [r.value for r in readings],
-            [r.quality for r in readings],
-            now=time.time(),
-        )
+        hub = _hub(request)
+        with hub.metrics.ingest_seconds.time():
+            return hub.ingest(
+                name,
+                [r.tag for r in readings],
+                [r.time for r in readings],
+                [r.value for r in readings],
+                [r.quality for r in readings],
+                now=time.time(),
+            )
 
     @app.get(f"{API}/trains/{{name}}/estimates/latest", tags=["estimates"])
     def read_latest(name: str, request: Request, _: ReadAccess) -> EstimatePublic:

@@ -26,6 +26,7 @@ import numpy as np
 
 from estimator.config import TrainConfig
 from estimator.session import EstimateBatch, GatedReading, SessionOutput, TrainSession
+from service.metrics import ServiceMetrics
 from service.schemas import IngestResult, RefusedReading
 from service.settings import Settings
 from service.store import Store, TrainRecord
@@ -135,7 +136,7 @@ class Hub:
         self.trains: dict[str, Runtime] = {}
         self._lock = threading.Lock()
         self.ready = False
-        self.counters: dict[str, int] = {}
+        self.metrics = ServiceMetrics(self.estimate_times)
 
     # ------------------------------------------------------------------ lifecycle
 
@@ -273,10 +274,10 @@ class Hub:
                 runtime.journal_seq = max(runtime.journal_seq, max(result.new_ids))
                 if session.filter.t >= runtime.checkpoint_time + self.settings.checkpoint_every:
                     self._checkpoint(runtime)
-            self._count("readings_accepted", int(new.size))
-            self._count("readings_duplicate", len(result.duplicates))
+            self.metrics.accepted.inc(int(new.size))
+            self.metrics.duplicates.inc(len(result.duplicates))
             for r in refused:
-                self._count(f"refused:{_reason_key(r.reason)}", 1)
+                self.metrics.refused.labels(_reason_key(r.reason)).inc()
         refused.sort(key=lambda r: r.index)
         return IngestResult(
             accepted=int(new.size), duplicates=len(result.duplicates), refused=refused
@@ -291,7 +292,7 @@ class Hub:
         gated = gated_rows(out.gated, "gated") + gated_rows(out.steps, "step")
         if gated:
             self.store.upsert_gated(runtime.train_id, gated)
-        self._count("steps", len(rows))
+        self.metrics.estimates.inc(len(rows))
 
     def _checkpoint(self, runtime: Runtime) -> None:
         if not runtime.session.filter.initialized:
@@ -299,10 +300,23 @@ class Hub:
         self.store.save_checkpoint(
             runtime.train_id, runtime.journal_seq, runtime.session.checkpoint()
         )
-        runtime.checkpoint_time = runtime.session.filter.t
+        runtime.checkpoint_time = now = runtime.session.filter.t
+        keep_readings = self.settings.retention_readings
+        keep_estimates = self.settings.retention_estimates
+        if keep_readings is not None or keep_estimates is not None:
+            # The store never drops journal rows the latest checkpoint still needs.
+            self.store.prune(
+                runtime.train_id,
+                readings_before=None if keep_readings is None else now - keep_readings,
+                estimates_before=None if keep_estimates is None else now - keep_estimates,
+            )
 
-    def _count(self, key: str, n: int) -> None:
-        self.counters[key] = self.counters.get(key, 0) + n
+    def estimate_times(self) -> dict[str, float | None]:
+        """Each train's newest estimate time [s since the epoch], or None."""
+        return {
+            name: None if r.latest is None else float(r.latest["t"])
+            for name, r in list(self.trains.items())
+        }
 
     # ------------------------------------------------------------------ live
 

@@ -195,3 +195,15 @@ def test_openapi_document_is_valid(client: TestClient):
     spec = client.get("/openapi.json").json()
     validate(spec)
     assert "monitoring aid, not a safety system" in spec["info"]["description"]
+
+
+def test_metrics_count_readings_by_outcome(client: TestClient):
+    readings = demo_readings(0.5, time.time())
+    post(client, readings)
+    client.post(f"{URL}/readings", json={"readings": [{"tag": "XX-1", "time": 1.0, "value": 1}]})
+    assert client.get("/metrics", headers={"Authorization": ""}).status_code == 401
+    text = client.get("/metrics").text
+    assert f"stagewatch_readings_accepted_total {float(len(readings))}" in text
+    assert 'stagewatch_readings_refused_total{reason="unknown_tag"} 1.0' in text
+    assert 'stagewatch_estimate_age_seconds{train="wrenfield-line2"}' in text
+    assert "stagewatch_ingest_seconds_bucket" in text
