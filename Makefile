@@ -13,7 +13,7 @@ PYTHON ?= python3
 # estimator package keys its cache folder on a digest of its sources below this.
 export STAGEWATCH_CACHE_DIR := $(CURDIR)/.cache
 
-.PHONY: help venv run demo test bench lint clean
+.PHONY: help venv run replay demo test bench lint clean
 
 help: ## List the targets
 	@echo "stagewatch make targets:"
@@ -27,7 +27,10 @@ $(STAMP): pyproject.toml
 
 venv: $(STAMP) ## Create .venv and install stagewatch with its dev extras
 
-run: $(STAMP) ## Replay the demo month (replay_data/wrenfield) into out/wrenfield; print where the report is
+run: $(STAMP) ## Start the service on 127.0.0.1 with the demo train and feed it the demo month, fast
+	$(BIN)/stagewatch live-demo
+
+replay: $(STAMP) ## Replay the demo month (replay_data/wrenfield) into out/wrenfield; print where the report is
 	$(BIN)/stagewatch replay replay_data/wrenfield/archive.parquet \
 		--config replay_data/wrenfield/train.toml \
 		--truth replay_data/wrenfield/truth.parquet --out out/wrenfield

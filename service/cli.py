@@ -498,6 +498,19 @@ def serve(
         store.close()
 
 
+@app.command(name="live-demo", help="Run the service with the demo train, fed in accelerated time.")
+def live_demo(
+    port: Annotated[int, typer.Option(help="Loopback TCP port.")] = 8470,
+    speed: Annotated[float, typer.Option(help="Archive seconds per wall-clock second.")] = 1800.0,
+) -> None:
+    """Start the service on 127.0.0.1 and feed it the demo month until Ctrl-C."""
+    if not speed > 0:
+        raise _fail(f"error: --speed must be positive, got {speed}")
+    from service.live_demo import run_live_demo
+
+    run_live_demo(port=port, speed=speed)
+
+
 def _register_train(store: Any, path: Path) -> None:
     """Register a train file unless a train of its name is already stored."""
     from estimator.config import load_train_config

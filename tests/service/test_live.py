@@ -154,3 +154,13 @@ def test_live_stream_sends_new_estimates_and_resumes_from_last_event_id(server: 
             if line.startswith("id:"):
                 assert float(line[3:]) > float(first["id"])
                 break
+
+
+def test_live_demo_serves_the_demo_train_and_feeds_it(tmp_path: Path):
+    from service.live_demo import run_live_demo
+
+    result = run_live_demo(
+        port=free_port(), speed=50_000.0, data_dir=tmp_path / "demo", stop_after=6.0, echo=False
+    )
+    assert int(result["posted"]) > 1000  # type: ignore[call-overload]
+    assert (tmp_path / "demo" / "stagewatch.db").exists()
