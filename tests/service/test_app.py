@@ -207,3 +207,36 @@ def test_metrics_count_readings_by_outcome(client: TestClient):
     assert 'stagewatch_readings_refused_total{reason="unknown_tag"} 1.0' in text
     assert 'stagewatch_estimate_age_seconds{train="wrenfield-line2"}' in text
     assert "stagewatch_ingest_seconds_bucket" in text
+
+
+def test_service_estimates_equal_the_replay_of_the_same_readings(
+    client: TestClient, tmp_path: Path
+):
+    # One pipeline, two drivers (DESIGN.md, "Data flow"): the readings posted to the
+    # service, written as an archive and replayed, give the same estimates.
+    import pyarrow.parquet as pq
+
+    from service.archive import ArchiveColumns, write_archive
+    from service.replay import replay
+
+    readings = demo_readings(4.0, time.time())
+    post(client, readings)
+    archive = tmp_path / "posted.csv"
+    write_archive(
+        archive,
+        ArchiveColumns.from_readings(
+            [str(r["tag"]) for r in readings],
+            np.array([r["time"] for r in readings], dtype=float),
+            np.array([r["value"] for r in readings], dtype=float),
+        ),
+    )
+    replay(archive, DEMO, tmp_path / "out", progress=False, report=False)
+    replayed = pq.read_table(tmp_path / "out" / "estimates.parquet").to_pandas()
+    served = client.get(f"{URL}/estimates").json()["data"]
+    assert len(served) == len(replayed)
+    for column, vessel in (("R-201.glucose", 0), ("R-202.glucose", 1), ("R-203.glucose", 2)):
+        got = [row["vessels"][vessel]["concentration"]["glucose"]["value"] for row in served]
+        np.testing.assert_allclose(got, replayed[column].to_numpy(), rtol=1e-9)
+    np.testing.assert_allclose(
+        [row["activity"]["value"] for row in served], replayed["activity"].to_numpy(), rtol=1e-9
+    )
