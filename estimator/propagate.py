@@ -251,16 +251,7 @@ def discretize_into(
                 y_ij = b5 * p4[i, j] + b3 * p2[i, j]
                 p2[i, j] = b4 * p4[i, j] + b2 * p2[i, j]  # V without b0 I
                 p4[i, j] = y_ij
-        for i in range(n_dyn):
-            for j in range(m):
-                e[i, j] = 0.0
-        for td in range(count_dyn):
-            t = dyn[td]
-            i = nz_i[t]
-            r = nz_r[t]
-            val = nz_v[t]
-            for j in range(m):
-                e[i, j] += val * p4[r, j]
+        _sparse_product(nz_i, nz_r, nz_v, dyn, count_dyn, p4, e)  # rows >= n_dyn zeroed
         for i in range(n_dyn):
             for j in range(m):
                 u_ij = e[i, j] + b1 * a[i, j]

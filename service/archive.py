@@ -193,7 +193,8 @@ def to_si(columns: ArchiveColumns, config: TrainConfig) -> ArchiveColumns:
 # ---------------------------------------------------------------------- files
 
 
-def _kind(path: Path) -> Literal["csv", "parquet"]:
+def archive_kind(path: Path) -> Literal["csv", "parquet"]:
+    """Tell the archive's file type from its name (.csv, .csv.gz, .parquet)."""
     name = path.name.lower()
     if name.endswith((".parquet", ".pq")):
         return "parquet"
@@ -228,7 +229,7 @@ class _Categorical:
 
 
 def _write_table(path: Path, columns: dict[str, Any]) -> None:
-    kind = _kind(path)
+    kind = archive_kind(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     if kind == "csv":
         import pandas as pd
@@ -295,7 +296,7 @@ def write_archive(
         of one tag at one time.
     """
     file = Path(path)
-    _kind(file)
+    archive_kind(file)
     if form == "long":
         columns: dict[str, Any] = {
             "time": _time_column(readings.times, time_format),
@@ -335,7 +336,7 @@ def write_archive(
 
 def _raw_columns(file: Path) -> dict[str, Any]:
     """Every column of the file: numeric numpy arrays, or object arrays of str."""
-    kind = _kind(file)
+    kind = archive_kind(file)
     if not file.is_file():
         raise ArchiveError(f"{file}: no such file")
     if kind == "csv":

@@ -21,7 +21,7 @@ from typing import Any, Literal
 import numpy as np
 
 from estimator.model import FloatArray, IntArray
-from service.archive import ArchiveError
+from service.archive import ArchiveError, archive_kind
 
 __all__ = ["ArchiveBatch", "ArchiveStream"]
 
@@ -61,13 +61,6 @@ class ArchiveBatch:
     progress: float
 
 
-def _archive_kind(path: Path) -> Literal["csv", "parquet"]:
-    name = path.name.lower()
-    if name.endswith((".parquet", ".pq")):
-        return "parquet"
-    if name.endswith((".csv", ".csv.gz")):
-        return "csv"
-    raise ArchiveError(f"{path}: unknown archive type; name it .csv, .csv.gz or .parquet")
 
 
 class ArchiveStream:
@@ -98,7 +91,7 @@ class ArchiveStream:
 
     def __init__(self, path: Path) -> None:
         self.path = path
-        self.kind = _archive_kind(path)
+        self.kind = archive_kind(path)
         if not path.is_file():
             raise ArchiveError(f"{path}: no such file")
         self.columns = self._header()
