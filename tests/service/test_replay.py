@@ -338,3 +338,31 @@ def test_plot_bins_stay_bounded_and_keep_means():
     assert MAX_PLOT_POINTS // 4 < len(times) <= MAX_PLOT_POINTS
     np.testing.assert_allclose(means[:, 0], 2.0 * times, rtol=1e-12)
     assert bins.count.sum() == len(t)
+
+
+def test_faults_never_push_estimates_out_of_bounds_and_spikes_are_gated(demo):
+    # The demo month's frozen analyzer, dropouts and spikes (regenerated from its
+    # scenario and seed to know which readings were spikes): every estimate stays
+    # finite and physical, and each spike of 8 sigma or more is gated.
+    from estimator.model import TrainModel
+    from estimator.scenario import load_scenario
+    from estimator.simulate import FAULT_SPIKE, simulate
+
+    _, out = demo
+    est = _estimates(out)
+    numeric = _numeric(est)
+    assert np.all(np.isfinite(numeric))
+    for name, column in est.items():
+        if name.endswith(".glucose") or name.endswith(".fructose") or name == "activity":
+            assert np.all(column >= 0.0), name
+    config = load_train_config(TRAIN)
+    sim = simulate(TrainModel.from_config(config), load_scenario(SCENARIO, config))
+    spikes = np.flatnonzero(sim.faults == FAULT_SPIKE)
+    assert len(spikes) > 100
+    with (out / "gated.csv").open() as f:
+        gated = {(row["tag"], round(float(row["time"]), 3)) for row in csv.DictReader(f)}
+    spike_keys = {
+        (sim.tag_names[int(sim.reading_tags[i])], round(float(sim.reading_times[i]), 3))
+        for i in spikes
+    }
+    assert spike_keys <= gated, sorted(spike_keys - gated)[:5]
