@@ -347,8 +347,11 @@ class TrainSession:
 
 
 def _fingerprint(config: TrainConfig) -> str:
-    """Digest the train description: a checkpoint is only valid for its own."""
-    return hashlib.sha256(config.model_dump_json().encode()).hexdigest()
+    """Digest what the filter depends on: a checkpoint is only valid for its own.
+
+    The alert settings are left out: changing a limit does not change the filter.
+    """
+    return hashlib.sha256(config.model_dump_json(exclude={"alerts"}).encode()).hexdigest()
 
 
 class RevisionBuffer:
