@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import hashlib
 import io
+import json
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -25,6 +26,7 @@ from typing import Protocol
 import numpy as np
 from numpy.typing import ArrayLike
 
+from estimator.alerts import AlertEngine, AlertEvent, HealthInput
 from estimator.config import TrainConfig
 from estimator.conversion import design_conversion, feed_inputs
 from estimator.filter import (
@@ -132,6 +134,7 @@ class SessionOutput:
     refused: list[Refusal] = field(default_factory=list)
     nis: FloatArray = field(default_factory=lambda: np.empty((0, 4)))
     revised_from: float | None = None
+    alerts: list[AlertEvent] = field(default_factory=list)
 
 
 class TrainSession:
@@ -143,10 +146,15 @@ class TrainSession:
         The train description.
     snapshot_interval : float
         Spacing of the filter's rewind snapshots [s].
+    alerts : bool
+        Run the train's alert rules on every output (``SessionOutput.alerts``).
     """
 
-    def __init__(self, config: TrainConfig, *, snapshot_interval: float = 60.0) -> None:
+    def __init__(
+        self, config: TrainConfig, *, snapshot_interval: float = 60.0, alerts: bool = True
+    ) -> None:
         self.config = config
+        self.alert_engine = AlertEngine(config) if alerts else None
         self.model = TrainModel.from_config(config)
         self.filter = CascadeFilter(self.model, snapshot_interval=snapshot_interval)
         names = self.filter.tag_names
@@ -170,6 +178,8 @@ class TrainSession:
         arrays = self.filter.state_arrays()
         arrays["format"] = np.array(_CHECKPOINT_FORMAT)
         arrays["config"] = np.array(_fingerprint(self.config))
+        if self.alert_engine is not None:
+            arrays["alerts"] = np.array(json.dumps(self.alert_engine.state_dict()))
         np.savez_compressed(buffer, **arrays)  # type: ignore[arg-type]  # stub types kwds as bool
         return buffer.getvalue()
 
@@ -193,7 +203,10 @@ class TrainSession:
             raise ValueError("session checkpoint of another format version")
         if str(arrays.pop("config", "")) != _fingerprint(config):
             raise ValueError("session checkpoint of another train configuration")
+        alerts = arrays.pop("alerts", None)
         session.filter.load_state(arrays)
+        if alerts is not None:
+            session.alert_engine = AlertEngine.from_state_dict(config, json.loads(str(alerts)))
         return session
 
     @property
@@ -256,7 +269,14 @@ class TrainSession:
         code = np.asarray(codes, dtype=np.int64)
         v = np.asarray(values, dtype=np.float64) if si else self.to_si(code, values)
         run = self.filter.add_columns(code, times, v, names=names)
-        return self._output(run)
+        output = self._output(run)
+        if self.alert_engine is not None:
+            tags = names if names is not None else [
+                self.tags[c] if 0 <= c < len(self.tags) else "" for c in code.tolist()
+            ]  # fmt: skip
+            health = HealthInput.from_session(self, tags, times, v, output, si=True)
+            output.alerts = self.alert_engine.update(output.estimates, health)
+        return output
 
     def _output(self, run: FilterRun) -> SessionOutput:
         model = self.model

@@ -172,3 +172,32 @@ def test_restore_refuses_a_checkpoint_of_another_configuration():
     )
     with pytest.raises(ValueError, match="another train configuration"):
         TrainSession.restore(other, session.checkpoint())
+
+
+def test_session_raises_alerts_and_keeps_them_across_a_checkpoint():
+    # A sudden 25 % activity loss: the session's alert engine raises an alert within
+    # two total residence times (2 x 29 m^3 / 12 m^3/h = 4.8 h), and a restored
+    # session carries the active alert on instead of raising it again.
+    session = demo_session()
+    scenario = Scenario(
+        duration=12 * HOUR,
+        activity=Profile(((0.0, 1.0), (4 * HOUR, 1.0), (4 * HOUR, 0.75))),
+        analyzer_period={"AI-203G": 240.0, "AI-200G": 120.0, "LAB-202F": 12 * HOUR},
+    )
+    sim = simulate(session.model, scenario, seed=2)
+    tags, times, values = sim.columns()
+    events = []
+    for lo in np.arange(0.0, 12 * HOUR, HOUR):
+        sel = (times >= lo) & (times < lo + HOUR)
+        out = session.ingest(
+            [t for t, k in zip(tags, sel, strict=True) if k], times[sel], values[sel], si=True
+        )
+        events += out.alerts
+    raised = [e for e in events if str(e.to_state).startswith("active")]
+    assert raised, "no alert for a 25 % activity loss"
+    assert raised[0].time - 4 * HOUR < 2 * 29.0 / 12.0 * HOUR
+    restored = TrainSession.restore(session.config, session.checkpoint())
+    assert restored.alert_engine is not None and session.alert_engine is not None
+    assert [a.alert_id for a in restored.alert_engine.active()] == [
+        a.alert_id for a in session.alert_engine.active()
+    ]
