@@ -694,6 +694,9 @@ class CascadeFilter:
         self._snap_u = np.empty((0, model.n_inputs))
         self._snap_streak = np.empty((0, len(defs)), dtype=np.int64)
         self._persist = cfg.estimator.step_persistence
+        # The current state below is the state after log positions [0, _live_pos).
+        self._live_pos = 0
+        self._streak = np.zeros(len(defs), dtype=np.int64)
         # Current state after the whole log.
         self.t = -math.inf
         self.x = np.zeros(lay.n)
@@ -803,10 +806,9 @@ class CascadeFilter:
         finite = np.isfinite(t) & np.isfinite(v)
         in_range = (v >= self._lo_of[safe]) & (v <= self._hi_of[safe])
         sample = t - self._dead_of[safe]
-        oldest = self.t - self.horizon if self.initialized else -math.inf
-        if self._snap_t.size:
-            oldest = max(oldest, float(self._snap_t[0]))
-        fresh = sample >= oldest
+        horizon_start = self.t - self.horizon if self.initialized else -math.inf
+        history_start = float(self._snap_t[0]) if self._snap_t.size else -math.inf
+        fresh = (sample >= horizon_start) & (sample >= history_start)
         take = known & finite & in_range & fresh
         refused: list[Refusal] = []
         if not np.all(take):
@@ -821,8 +823,10 @@ class CascadeFilter:
                     reason = "not a finite number"
                 elif not in_range[i]:
                     reason = self._range_reason[code[i]]
-                else:
+                elif sample[i] < horizon_start:
                     reason = horizon
+                else:
+                    reason = "sampled before the start of this train's history"
                 refused.append(Refusal(name, float(t[i]), float(v[i]), reason))
         return take, refused
 
@@ -876,7 +880,10 @@ class CascadeFilter:
             rows = np.flatnonzero((pending[:, 1] == KIND_MEASUREMENT) & (pending[:, 2] == j))
             if rows.size:
                 u0[1 + lay.n_vessels + s] = pending[rows[0], 3]
-        t0 = float(pending[0, 0])
+        # History starts one dead time before the first reading, so that analyzer
+        # samples taken before it but reported after it are not refused as too old.
+        lag = max((d.dead_time for d in self.measurements), default=0.0)
+        t0 = float(pending[0, 0]) - lag
         self.x = self.model.steady_state(u0)
         self.cov = np.diag(self.model.initial_std**2)
         self.u = u0
@@ -889,6 +896,8 @@ class CascadeFilter:
         self._snap_cov = self.cov[None, :, :].copy()
         self._snap_u = self.u[None, :].copy()
         self._snap_streak = np.zeros((1, len(self.measurements)), dtype=np.int64)
+        self._live_pos = 0
+        self._streak = np.zeros(len(self.measurements), dtype=np.int64)
         self.initialized = True
         return True
 
@@ -947,18 +956,33 @@ class CascadeFilter:
         return int(np.count_nonzero(keep[:first_new]))
 
     def _run_from(self, position: int) -> FilterRun:
-        """Restore the last snapshot at or before ``position`` and run the log to its end."""
-        s = max(int(np.searchsorted(self._snap_pos, position, side="right")) - 1, 0)
-        start = int(self._snap_pos[s])
+        """Run the log from ``position`` to its end.
+
+        When nothing before ``position`` changed since the last run (readings that
+        arrive in order), the filter goes on from its current state; otherwise it
+        restores the last snapshot at or before ``position`` and runs forward again.
+        Both give the same numbers.
+        """
         rewound = None
-        if start < len(self._ev_t) and self._snap_t[s] < self.t:
-            rewound = float(self._snap_t[s])
-        x = self._snap_x[s].copy()
-        cov = self._snap_cov[s].copy()
-        u = self._snap_u[s].copy()
-        streak = self._snap_streak[s].copy()
-        t = float(self._snap_t[s])
-        keep = s + 1
+        if position >= self._live_pos:
+            start = self._live_pos
+            x, cov, u = self.x.copy(), self.cov.copy(), self.u.copy()
+            streak = self._streak.copy()
+            t = self.t
+            keep = len(self._snap_t)
+            snap_last = float(self._snap_t[-1])
+        else:
+            s = max(int(np.searchsorted(self._snap_pos, position, side="right")) - 1, 0)
+            start = int(self._snap_pos[s])
+            if start < len(self._ev_t) and self._snap_t[s] < self.t:
+                rewound = float(self._snap_t[s])
+            x = self._snap_x[s].copy()
+            cov = self._snap_cov[s].copy()
+            u = self._snap_u[s].copy()
+            streak = self._snap_streak[s].copy()
+            t = float(self._snap_t[s])
+            keep = s + 1
+            snap_last = float(self._snap_t[s])
         stop = len(self._ev_t)
         count = stop - start
         n = self.model.n_states
@@ -981,7 +1005,7 @@ class CascadeFilter:
             self._ev_t, self._ev_kind, self._ev_idx, self._ev_val, start, stop,
             self.model.ip, self.model.fp, self.model.process_noise,
             self._m_state, self._m_bias, self._m_var, self._m_group, self._gates, self._lower,
-            self._persist, streak, self.snapshot_interval, float(self._snap_t[s]),
+            self._persist, streak, self.snapshot_interval, snap_last,
             self._ev_status, self._ev_nis, self._ev_innov,
             out_t, out_x, out_var, out_conv, out_u,
             snap_pos, snap_t, snap_x, snap_cov, snap_u, snap_streak,
@@ -992,7 +1016,9 @@ class CascadeFilter:
         self._snap_cov = np.concatenate([self._snap_cov[:keep], snap_cov[:n_snap]])
         self._snap_u = np.concatenate([self._snap_u[:keep], snap_u[:n_snap]])
         self._snap_streak = np.concatenate([self._snap_streak[:keep], snap_streak[:n_snap]])
-        self.x, self.cov, self.u, self.t = x, cov, u, max(t, self.t)
+        self.x, self.cov, self.u, self.t = x, cov, u, t
+        self._streak = streak
+        self._live_pos = stop
         return FilterRun(
             out_t[:n_out],
             out_x[:n_out],
@@ -1012,6 +1038,7 @@ class CascadeFilter:
         if s <= 0 or s < len(self._snap_t) // 2:
             return
         cut = int(self._snap_pos[s])
+        self._live_pos -= cut
         self._snap_pos = self._snap_pos[s:] - cut
         self._snap_t = self._snap_t[s:]
         self._snap_x = self._snap_x[s:]
@@ -1071,7 +1098,12 @@ class CascadeFilter:
             raise ValueError("filter state belongs to a train with another state layout")
         for name in _STATE:
             value = np.array(arrays[name], copy=True)
-            setattr(self, name, float(value) if name == "t" else value)
+            if name == "t":
+                setattr(self, name, float(value))
+            elif name == "_live_pos":
+                setattr(self, name, int(value))
+            else:
+                setattr(self, name, value)
         self.initialized = bool(arrays["initialized"])
 
 
@@ -1079,6 +1111,7 @@ _STATE = (
     "t", "x", "cov", "u", "_pending",
     "_ev_t", "_ev_kind", "_ev_idx", "_ev_val", "_ev_status", "_ev_nis", "_ev_innov",
     "_snap_pos", "_snap_t", "_snap_x", "_snap_cov", "_snap_u", "_snap_streak",
+    "_live_pos", "_streak",
 )  # fmt: skip
 
 

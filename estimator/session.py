@@ -179,8 +179,11 @@ class TrainSession:
         arrays["format"] = np.array(_CHECKPOINT_FORMAT)
         arrays["config"] = np.array(_fingerprint(self.config))
         if self.alert_engine is not None:
-            arrays["alerts"] = np.array(json.dumps(self.alert_engine.state_dict()))
-        np.savez_compressed(buffer, **arrays)  # type: ignore[arg-type]  # stub types kwds as bool
+            state = json.dumps(self.alert_engine.state_dict()).encode()
+            arrays["alerts"] = np.frombuffer(state, dtype=np.uint8)
+        # Uncompressed: a service checkpoints inside a request, and zlib would cost
+        # more time than the bytes it saves are worth.
+        np.savez(buffer, **arrays)  # type: ignore[arg-type]  # stub types kwds as bool
         return buffer.getvalue()
 
     @classmethod
@@ -206,7 +209,8 @@ class TrainSession:
         alerts = arrays.pop("alerts", None)
         session.filter.load_state(arrays)
         if alerts is not None:
-            session.alert_engine = AlertEngine.from_state_dict(config, json.loads(str(alerts)))
+            state = json.loads(np.asarray(alerts, dtype=np.uint8).tobytes().decode())
+            session.alert_engine = AlertEngine.from_state_dict(config, state)
         return session
 
     @property
