@@ -43,9 +43,11 @@ test: $(STAMP) ## Install missing system packages (if any), then run the whole t
 	bash scripts/system-deps.sh
 	$(BIN)/pytest
 
-bench: $(STAMP) ## Time the filter against its reference, then replay a month and a year of data
+bench: $(STAMP) ## Time the filter against its reference, replay a month and a year, load-test the service
+	bash scripts/system-deps.sh --bench
 	$(BIN)/python bench/bench_filter.py
 	$(BIN)/python bench/bench_replay.py
+	$(BIN)/python bench/bench_service.py
 
 lint: $(STAMP) ## ruff check, then mypy
 	$(BIN)/ruff check estimator service tests bench

@@ -1,18 +1,34 @@
 #!/usr/bin/env bash
 # Install the Debian packages the test suite needs, if any are missing.
 #
-# Run by `make test`. With every package present it does nothing. As root it
-# installs what is missing; otherwise it prints the one command to run and fails,
-# so a missing package is never mistaken for a passing suite.
+#   bash scripts/system-deps.sh           the test suite's packages (make test)
+#   bash scripts/system-deps.sh --bench   those and the benchmarks' (make bench)
+#
+# With every package present it does nothing. As root it installs what is
+# missing; otherwise it prints the one command to run and fails, so a missing
+# package is never mistaken for a passing suite.
 set -euo pipefail
 
 # Space-separated Debian package names: postgresql for the store's tests (a
 # throwaway server is started by tests/service/conftest.py). Later suites add
-# chromium (browser tests) and wrk (load benchmarks).
+# chromium (browser tests).
 PACKAGES="postgresql"
+# The benchmarks' packages: wrk, the HTTP load generator of bench/bench_service.py.
+BENCH_PACKAGES="wrk"
+
+wanted="$PACKAGES"
+for arg in "$@"; do
+    case "$arg" in
+        --bench) wanted="$wanted $BENCH_PACKAGES" ;;
+        *)
+            echo "system-deps: unknown argument: $arg (usage: system-deps.sh [--bench])" >&2
+            exit 2
+            ;;
+    esac
+done
 
 missing=()
-for pkg in $PACKAGES; do
+for pkg in $wanted; do
     if ! dpkg -s "$pkg" >/dev/null 2>&1; then
         missing+=("$pkg")
     fi
