@@ -351,7 +351,7 @@ def replay_command(
     config : pathlib.Path
         The train's TOML file.
     out : pathlib.Path
-        Folder for ``estimates.parquet``/``.csv``, ``gated.csv``, ``steps.csv``,
+        Folder for ``estimates.parquet``/``.csv``, ``gated.csv``, ``steps.csv``, ``alerts.csv``,
         ``refused.csv``, ``summary.json``, ``report.html`` and ``plots/``.
     truth : pathlib.Path, optional
         Truth file (wide: ``time``, ``<vessel>.<species>`` [mol/m^3], ``activity``).
@@ -446,6 +446,13 @@ def _replay_lines(summary: Any) -> list[str]:
         lines.append(
             f"lab {lab.tag} ({lab.species} in {lab.vessel}): {lab.count} results, "
             f"RMSE {lab.rmse:.3g} mol/m^3, bias {lab.bias:+.3g} mol/m^3"
+        )
+    alerts = getattr(s, "alerts", None)
+    if alerts is not None:
+        rules = ", ".join(f"{rule} {n}" for rule, n in sorted(alerts.by_rule.items()) if n)
+        lines.append(
+            f"alerts: {alerts.activations} activations ({rules or 'none'}); at most "
+            f"{alerts.per_10_min_max} in 10 min, {alerts.chattering} chattering"
         )
     report = s.files.get("report")
     lines.append(f"report: {report}" if report else f"files: {s.out}")

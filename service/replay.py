@@ -32,6 +32,14 @@ Files written into ``out``:
     after persistent gating, with their final decision (a rewind can re-decide).
 ``refused.csv``
     Readings the session did not take, with the reason.
+``alerts.csv``
+    Every alert transition the session's alert engine logged, in time order:
+    ``time`` [s since the epoch], ``time_utc`` (ISO 8601), ``alert_id``, ``rule``,
+    ``subject``, ``priority``, ``from_state``, ``to_state``, ``figure`` and
+    ``threshold`` [``unit``; empty when there is none], ``unit`` and ``message``.
+    Alerts are judged on the estimates as the session first produced them, chunk
+    by chunk; the engine never re-judges a time it has evaluated, so a rewind for a
+    late reading adds no repeated transitions.
 ``summary.json``
     :class:`ReplaySummary` as JSON (NaN written as null).
 ``report.html`` and ``plots/*.png``
@@ -48,6 +56,7 @@ import json
 import math
 import sys
 import time as _time
+from collections import Counter, deque
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -56,6 +65,7 @@ from typing import IO, Any
 import numpy as np
 from numpy.typing import NDArray
 
+from estimator.alarm_state import AlertEvent, AlertState
 from estimator.config import MeasurementConfig, TagInput, TrainConfig
 from estimator.filter import Refusal
 from estimator.model import FloatArray, IntArray
@@ -69,18 +79,28 @@ from estimator.session import (
 from service.archive import ArchiveError
 from service.archive_stream import ArchiveBatch, ArchiveStream
 from service.report import (
+    ALERT_LOG_ROWS,
+    RULE_KINDS,
     Accuracy,
+    AlarmGuidance,
+    AlertInterval,
+    AlertStatistics,
     LabAccuracy,
     MeasurementSeries,
     NisStatistics,
     ReplaySeries,
     ReplaySummary,
+    alarm_guidance,
     nis_statistics,
 )
 
 __all__ = [
+    "ALERT_FIELDS",
     "MAX_PLOT_POINTS",
     "Accuracy",
+    "AlarmGuidance",
+    "AlertInterval",
+    "AlertStatistics",
     "LabAccuracy",
     "MeasurementSeries",
     "NisStatistics",
@@ -93,9 +113,31 @@ __all__ = [
 #: Most bins a plotted series keeps; a long replay merges bins pairwise to stay below.
 MAX_PLOT_POINTS = 4000
 
+#: Columns of ``alerts.csv``, one row per alert transition.
+ALERT_FIELDS = (
+    "time",
+    "time_utc",
+    "alert_id",
+    "rule",
+    "subject",
+    "priority",
+    "from_state",
+    "to_state",
+    "figure",
+    "threshold",
+    "unit",
+    "message",
+)
+
 _CSV_DIGITS = 9
 _GATED_PLOT_POINTS = 5000
+_ALERT_PLOT_INTERVALS = 2000
 _EVENT_FIELDS = ("tag", "time", "sample_time", "value", "predicted", "unit", "nis", "reason")
+_TEN_MINUTES = 600.0
+_DAY = 86400.0
+_CHATTER_WINDOW = 60.0  # [s]: 3 or more activations of one alert within it is chattering
+_CHATTER_COUNT = 3
+_ACTIVE = (AlertState.ACTIVE_UNACKNOWLEDGED.value, AlertState.ACTIVE_ACKNOWLEDGED.value)
 
 
 # ---------------------------------------------------------------------- binning
@@ -317,6 +359,138 @@ def _event_row(event: GatedReading) -> list[Any]:
 
 def _repr(value: float) -> str:
     return repr(float(value))
+
+
+def _iso(time: float) -> str:
+    """Epoch seconds as ISO 8601 UTC to the millisecond, as ``estimates.csv`` writes them."""
+    stamp = np.array([round(time * 1e6)], dtype=np.int64).astype("datetime64[us]")
+    return str(np.datetime_as_string(stamp, unit="ms", timezone="UTC")[0])
+
+
+class _AlertLog:
+    """``alerts.csv``, written as the session raises events, and the summary's tallies.
+
+    Holds only what stays small whatever the replay's length: counters, the last
+    two activation times of each alert (for chattering), the first rows of the log
+    and the first few thousand activations for the plots.
+
+    An activation is a transition into ``active_unacknowledged``; an interval runs
+    from it to the next transition of the same alert out of the active states.
+    """
+
+    def __init__(self, path: Path) -> None:
+        self.file = _EventFile(path, ALERT_FIELDS)
+        self.head: list[AlertEvent] = []
+        self.activations = 0
+        self.clearings = 0
+        self.by_rule: Counter[str] = Counter()
+        self.by_priority: Counter[str] = Counter()
+        self.by_alert: Counter[str] = Counter()
+        self.by_kind: Counter[str] = Counter()
+        self.ten_minutes: Counter[int] = Counter()
+        self.days: Counter[int] = Counter()
+        self.recent: dict[str, deque[float]] = {}
+        self.chattering: dict[str, None] = {}  # an ordered set
+        self.open: dict[str, AlertEvent] = {}
+        self.intervals: list[AlertInterval] = []
+        self.last_time = -math.inf
+        self.out_of_order = 0
+
+    def add(self, events: Sequence[AlertEvent]) -> None:
+        """Write and count one output's events (the engine gives them in time order)."""
+        if not events:
+            return
+        self.file.write([_alert_row(e) for e in events])
+        room = ALERT_LOG_ROWS - len(self.head)
+        if room > 0:
+            self.head.extend(events[:room])
+        for e in events:
+            if e.time < self.last_time:
+                self.out_of_order += 1
+            self.last_time = max(self.last_time, e.time)
+            if e.to_state == AlertState.ACTIVE_UNACKNOWLEDGED.value:
+                self._activation(e)
+            elif e.from_state in _ACTIVE and e.to_state not in _ACTIVE:
+                self._clearing(e)
+
+    def _activation(self, e: AlertEvent) -> None:
+        self.activations += 1
+        self.by_rule[e.rule] += 1
+        self.by_priority[e.priority] += 1
+        self.by_alert[e.alert_id] += 1
+        self.by_kind[RULE_KINDS.get(e.rule, "other")] += 1
+        self.ten_minutes[math.floor(e.time / _TEN_MINUTES)] += 1
+        self.days[math.floor(e.time / _DAY)] += 1
+        recent = self.recent.setdefault(e.alert_id, deque(maxlen=_CHATTER_COUNT - 1))
+        if len(recent) == _CHATTER_COUNT - 1 and e.time - recent[0] <= _CHATTER_WINDOW:
+            self.chattering[e.alert_id] = None
+        recent.append(e.time)
+        self.open[e.alert_id] = e
+
+    def _clearing(self, e: AlertEvent) -> None:
+        self.clearings += 1
+        start = self.open.pop(e.alert_id, None)
+        if start is not None:
+            self._interval(start, e.time)
+
+    def _interval(self, start: AlertEvent, end: float) -> None:
+        if len(self.intervals) < _ALERT_PLOT_INTERVALS:
+            self.intervals.append(
+                AlertInterval(start.alert_id, start.rule, start.subject, start.priority,
+                              start.time, end)
+            )  # fmt: skip
+
+    def close(self) -> None:
+        """Close the file; activations still open become intervals without an end."""
+        self.file.close()
+        for start in self.open.values():
+            self._interval(start, math.nan)
+        self.intervals.sort(key=lambda i: i.start)
+
+    def statistics(self, first: float, last: float) -> AlertStatistics:
+        """Return the counts and rates over the replayed span ``first`` to ``last`` [s]."""
+        span = last - first if math.isfinite(first) and math.isfinite(last) else math.nan
+        periods = 0
+        if math.isfinite(span):
+            periods = math.floor(last / _TEN_MINUTES) - math.floor(first / _TEN_MINUTES) + 1
+        stats = AlertStatistics(
+            events=self.file.rows,
+            activations=self.activations,
+            clearings=self.clearings,
+            by_rule=dict(sorted(self.by_rule.items())),
+            by_priority={p: self.by_priority.get(p, 0) for p in ("high", "warning", "advisory")},
+            by_alert=dict(sorted(self.by_alert.items())),
+            by_kind=dict(sorted(self.by_kind.items())),
+            per_10_min_max=max(self.ten_minutes.values(), default=0),
+            per_10_min_mean=self.activations / (span / _TEN_MINUTES) if span > 0 else math.nan,
+            per_day_max=max(self.days.values(), default=0),
+            per_day_mean=self.activations / (span / _DAY) if span > 0 else math.nan,
+            periods_10_min=periods,
+            flood_periods=sum(1 for n in self.ten_minutes.values() if n > 10),
+            chattering=len(self.chattering),
+            chattering_alerts=list(self.chattering),
+            active_at_end=sorted(self.open),
+            out_of_order=self.out_of_order,
+        )
+        stats.guidance = alarm_guidance(stats)
+        return stats
+
+
+def _alert_row(e: AlertEvent) -> list[str]:
+    return [
+        _repr(e.time),
+        _iso(e.time),
+        e.alert_id,
+        e.rule,
+        e.subject,
+        e.priority,
+        e.from_state,
+        e.to_state,
+        "" if e.figure is None or not math.isfinite(e.figure) else _repr(e.figure),
+        "" if e.threshold is None or not math.isfinite(e.threshold) else _repr(e.threshold),
+        e.unit,
+        e.message,
+    ]
 
 
 # ---------------------------------------------------------------------- session side
@@ -738,6 +912,7 @@ class _Run:
         self.gated_file = _EventFile(out / "gated.csv", header)
         self.steps_file = _EventFile(out / "steps.csv", header)
         self.refused_file = _EventFile(out / "refused.csv", ["tag", "time", "value", "reason"])
+        self.alert_log = _AlertLog(out / "alerts.csv")
         # Pool of read, not yet ingested readings: session code, time, value, order key.
         self.pool = np.empty((0, 4))
         self.next_edge = math.nan
@@ -845,6 +1020,7 @@ class _Run:
     def _absorb(self, output: SessionOutput) -> None:
         if output.refused:
             self._refused(output.refused)
+        self.alert_log.add(output.alerts)
         self.buffer.add(output.estimates)
         if len(output.estimates):
             self.last_time = max(self.last_time, float(output.estimates.time[-1]))
@@ -926,6 +1102,7 @@ class _Run:
         self.files.close()
         for f in (self.gated_file, self.steps_file, self.refused_file):
             f.close()
+        self.alert_log.close()
 
     def finish(self) -> None:
         """Fill the summary's figures from the tallies."""
@@ -982,12 +1159,14 @@ class _Run:
                     bias=sc.lab_err[code] / n if n else math.nan,
                 )
             )
+        s.alerts = self.alert_log.statistics(s.first_time, s.last_time)
         s.files.update(
             estimates_parquet=str(self.files.parquet_path),
             estimates_csv=str(self.files.csv_path),
             gated=str(self.gated_file.path),
             steps=str(self.steps_file.path),
             refused=str(self.refused_file.path),
+            alerts=str(self.alert_log.file.path),
         )
 
     def series(self) -> ReplaySeries:
@@ -1013,6 +1192,8 @@ class _Run:
             activity=m[:, a0],
             activity_std=m[:, a0 + 1],
             feed=m[:, a0 + 2 : a0 + 2 + n_s],
+            alert_intervals=list(self.alert_log.intervals),
+            alert_log=list(self.alert_log.head),
         )
         truth = self.scores.truth
         if truth is not None and self.est_bins.origin is not None:

@@ -1,8 +1,9 @@
 """The replay report: what a replay found, and the HTML page and PNG plots that show it.
 
 The result types live here (:class:`ReplaySummary` with its :class:`NisStatistics`,
-:class:`Accuracy` and :class:`LabAccuracy`; the binned :class:`ReplaySeries`), and
-:mod:`service.replay` re-exports them. :func:`write_report` turns a summary and
+:class:`Accuracy`, :class:`LabAccuracy` and :class:`AlertStatistics`; the binned
+:class:`ReplaySeries` with its :class:`AlertInterval` list), and :mod:`service.replay`
+re-exports them. :func:`write_report` turns a summary and
 its series into ``report.html`` beside a ``plots/`` folder (the page links the
 images by relative path, so the folder can be zipped and mailed as it is). The
 plots:
@@ -14,7 +15,16 @@ plots:
 - ``activity.png``: the catalyst activity with its band, and the truth;
 - ``measurement-<tag>.png``: the readings of an analyzer or lab tag that the filter
   used, and those it gated (marked differently), over the estimate of the state
-  the tag measures.
+  the tag measures;
+- ``alerts.png``: a timeline of the alerts raised, one row per alert, a bar from
+  each activation to its clearing.
+
+The conversion, activity and measurement plots carry the alerts about what they
+show as shaded spans from activation to clearing, with a line at the activation:
+colour, hatching and line style all tell the priority. The page's "Alerts"
+section sets the alarm rates beside the published alarm-management guidance
+(EEMUA 191, ISA-18.2), each figure with its confidence tag from the project's
+REFERENCES.md.
 
 Colours come from the Okabe-Ito palette, which stays distinguishable with the
 common colour-vision deficiencies, and every distinction drawn in colour is
@@ -33,16 +43,23 @@ from typing import Any
 
 import numpy as np
 
+from estimator.alarm_state import AlertEvent
 from estimator.model import FloatArray
 
 __all__ = [
+    "ALERT_LOG_ROWS",
     "DISCLAIMER",
+    "RULE_KINDS",
     "Accuracy",
+    "AlarmGuidance",
+    "AlertInterval",
+    "AlertStatistics",
     "LabAccuracy",
     "MeasurementSeries",
     "NisStatistics",
     "ReplaySeries",
     "ReplaySummary",
+    "alarm_guidance",
     "nis_statistics",
     "write_report",
 ]
@@ -63,6 +80,35 @@ _VERMILLION = "#D55E00"
 _PURPLE = "#CC79A7"
 _SKY = "#56B4E9"
 _BLACK = "#000000"
+
+#: How each priority is drawn: colour, hatching of its span, line style at activation.
+_PRIORITY_STYLE = {
+    "high": (_VERMILLION, "////", "-"),
+    "warning": (_ORANGE, "\\\\", "-."),
+    "advisory": (_PURPLE, "..", ":"),
+}
+_PRIORITIES = tuple(_PRIORITY_STYLE)
+
+#: Rows of the alert log the page shows (``alerts.csv`` holds every one).
+ALERT_LOG_ROWS = 50
+
+#: What each alert rule watches: the process, the estimator's health, or its inputs.
+RULE_KINDS = {
+    "conversion_shortfall_warning": "process",
+    "conversion_shortfall_high": "process",
+    "activity_low": "process",
+    "activity_falling": "process",
+    "tag_stale": "health",
+    "tag_frozen": "health",
+    "tag_spikes": "health",
+    "model_mismatch": "health",
+    "flow_low": "inputs",
+    "temperature_range": "inputs",
+}
+# Rules about the whole train, drawn on every conversion plot and the activity plot.
+_TRAIN_RULES = ("activity_low", "activity_falling", "model_mismatch", "flow_low")
+_TAG_RULES = ("tag_stale", "tag_frozen", "tag_spikes")
+_TIMELINE_ROWS = 30
 
 _WIDTH = 9.0  # figure width [in]
 _PANEL = 2.6  # height of one panel [in]
@@ -166,6 +212,265 @@ class LabAccuracy:
     bias: float
 
 
+@dataclass(frozen=True)
+class AlarmGuidance:
+    """One alarm-rate figure of a replay beside the published guidance for it.
+
+    Attributes
+    ----------
+    metric : str
+        What is counted, in words.
+    value : float or None
+        This replay's figure (None when it is not one number).
+    measured : str
+        The figure as the page shows it.
+    guidance : str
+        What the source recommends, in its own terms.
+    limit : float or None
+        The bound ``value`` is compared with (the acceptable level).
+    source : str
+        Where the guidance comes from.
+    tag : str
+        Confidence of the figure as REFERENCES.md tags it: ``"V"`` read in a
+        retrieved text, ``"M"`` from memory, not confirmed, ``"CP"`` common practice.
+    within : bool or None
+        Whether ``value`` meets ``limit`` (None when there is nothing to compare).
+
+    Notes
+    -----
+    The guidance is written for every alarm one operator position sees, over 30
+    days or more; a train's stagewatch alerts are one contributor among many, so
+    they should use a small part of it.
+    """
+
+    metric: str
+    value: float | None
+    measured: str
+    guidance: str
+    limit: float | None
+    source: str
+    tag: str
+    within: bool | None
+
+
+@dataclass
+class AlertStatistics:
+    """The alerts a replay raised, counted the way alarm-management metrics count them.
+
+    An *activation* is a transition into ``active_unacknowledged``: one alarm
+    annunciated to an operator. Rates use whole UTC-aligned periods.
+
+    Attributes
+    ----------
+    events : int
+        Transitions logged (rows of ``alerts.csv``).
+    activations : int
+        Of those, activations.
+    clearings : int
+        Transitions out of an active state because the condition cleared.
+    by_rule, by_priority, by_alert : dict of str to int
+        Activations per rule, per priority (every priority listed) and per alert id.
+    by_kind : dict of str to int
+        Activations of process, health and input rules (:data:`RULE_KINDS`).
+    per_10_min_max, per_day_max : int
+        Most activations in one 10-minute period, and in one UTC day.
+    per_10_min_mean, per_day_mean : float
+        Activations per 10 min and per day over the replayed span [1/(10 min), 1/d]
+        (NaN when the span is empty).
+    periods_10_min : int
+        10-minute periods the replayed span touches.
+    flood_periods : int
+        Of those, periods with more than 10 activations (an alarm flood).
+    chattering : int
+        Alerts activated 3 or more times within 60 s at least once.
+    chattering_alerts : list of str
+        Their ids.
+    active_at_end : list of str
+        Alerts whose condition was still active when the replay ended.
+    out_of_order : int
+        Events stamped earlier than the event before them (0: the log is in time order).
+    guidance : list of AlarmGuidance
+        The rates beside EEMUA 191 and ISA-18.2 (:func:`alarm_guidance`).
+    """
+
+    events: int = 0
+    activations: int = 0
+    clearings: int = 0
+    by_rule: dict[str, int] = field(default_factory=dict)
+    by_priority: dict[str, int] = field(default_factory=lambda: dict.fromkeys(_PRIORITIES, 0))
+    by_alert: dict[str, int] = field(default_factory=dict)
+    by_kind: dict[str, int] = field(default_factory=dict)
+    per_10_min_max: int = 0
+    per_10_min_mean: float = math.nan
+    per_day_max: int = 0
+    per_day_mean: float = math.nan
+    periods_10_min: int = 0
+    flood_periods: int = 0
+    chattering: int = 0
+    chattering_alerts: list[str] = field(default_factory=list)
+    active_at_end: list[str] = field(default_factory=list)
+    out_of_order: int = 0
+    guidance: list[AlarmGuidance] = field(default_factory=list)
+
+
+@dataclass(frozen=True)
+class AlertInterval:
+    """One activation of one alert, for the plots.
+
+    Attributes
+    ----------
+    alert_id, rule, subject, priority : str
+        As in :class:`~estimator.alarm_state.AlertEvent`.
+    start : float
+        Activation time [s since the epoch].
+    end : float
+        When the condition cleared [s since the epoch]; NaN when it was still
+        active at the end of the replay.
+    """
+
+    alert_id: str
+    rule: str
+    subject: str
+    priority: str
+    start: float
+    end: float
+
+
+def alarm_guidance(stats: AlertStatistics) -> list[AlarmGuidance]:
+    """Set a replay's alarm rates beside EEMUA 191 and ISA-18.2.
+
+    Parameters
+    ----------
+    stats : AlertStatistics
+        The counts; ``guidance`` is not read.
+
+    Returns
+    -------
+    list of AlarmGuidance
+        One row per figure and source, tagged as REFERENCES.md sec. 6 tags it.
+
+    References
+    ----------
+    EEMUA 191 (1999) and ISA-18.2 rates as quoted by D. Strobhar and C. Harvey,
+    *Chemical Processing* (2011) [V]; the ISA-18.2 metric targets (per operator
+    position, 30 days or more of data) [M]; the chattering criterion of 3 or more
+    activations in 1 minute, a practitioner article [V].
+    """
+    s = stats
+    quoted = "as quoted by Strobhar & Harvey, Chemical Processing 2011"
+    isa_table = "ISA-18.2 metric targets, per operator position, 30 days or more"
+    flood_share = s.flood_periods / s.periods_10_min if s.periods_10_min else math.nan
+    total = sum(s.by_priority.values())
+    split = " / ".join(
+        f"{100 * s.by_priority.get(p, 0) / total:.0f} %" if total else "–"
+        for p in ("advisory", "warning", "high")
+    )
+
+    def row(
+        metric: str,
+        value: float,
+        measured: str,
+        guidance: str,
+        limit: float,
+        source: str,
+        tag: str,
+        strict: bool = False,
+    ) -> AlarmGuidance:
+        within = None
+        if math.isfinite(value):
+            within = bool(value < limit) if strict else bool(value <= limit)
+        return AlarmGuidance(metric, value, measured, guidance, limit, source, tag, within)
+
+    mean10 = s.per_10_min_mean
+    return [
+        row(
+            "alarms per 10 min, mean",
+            mean10,
+            _num(mean10, 3),
+            "under 1 is the goal; 2 manageable; 5 likely excessive",
+            1.0,
+            f"EEMUA 191 (1999), {quoted}",
+            "V",
+            strict=True,
+        ),
+        row(
+            "alarms per 10 min, mean",
+            mean10,
+            _num(mean10, 3),
+            "about 1 to 2 in steady state",
+            2.0,
+            f"ISA-18.2, {quoted}",
+            "V",
+        ),
+        row(
+            "alarms in the busiest 10 min",
+            float(s.per_10_min_max),
+            f"{s.per_10_min_max:,}",
+            "under 10 in the first 10 min after an upset is manageable; over 20 hard to cope with",
+            10.0,
+            f"EEMUA 191 (1999), {quoted}",
+            "V",
+            strict=True,
+        ),
+        row(
+            "alarms in the busiest 10 min",
+            float(s.per_10_min_max),
+            f"{s.per_10_min_max:,}",
+            "at most 10",
+            10.0,
+            isa_table,
+            "M",
+        ),
+        row(
+            "10-min periods in flood (more than 10 alarms)",
+            flood_share,
+            f"{s.flood_periods:,} of {s.periods_10_min:,}",
+            "under about 1 % of the periods",
+            0.01,
+            isa_table,
+            "M",
+            strict=True,
+        ),
+        row(
+            "alarms per day, mean",
+            s.per_day_mean,
+            _num(s.per_day_mean, 3),
+            "about 150 acceptable, about 300 maximum",
+            150.0,
+            isa_table,
+            "M",
+        ),
+        row(
+            "alarms on the busiest day",
+            float(s.per_day_max),
+            f"{s.per_day_max:,}",
+            "about 300 maximum",
+            300.0,
+            isa_table,
+            "M",
+        ),
+        row(
+            "chattering alarms (3 or more activations of one alert within 60 s)",
+            float(s.chattering),
+            f"{s.chattering:,}",
+            "none (criterion of 3 in 1 min: a practitioner article [V])",
+            0.0,
+            isa_table,
+            "M",
+        ),
+        AlarmGuidance(
+            "priority split, advisory / warning / high",
+            None,
+            split,
+            "about 80 % low / 15 % medium / 5 % high",
+            None,
+            isa_table,
+            "M",
+            None,
+        ),
+    ]
+
+
 @dataclass
 class ReplaySummary:
     """What a replay did and how well the estimator read the plant.
@@ -230,6 +535,8 @@ class ReplaySummary:
         Activity error against the truth after the warm-up [-].
     lab : list of LabAccuracy
         Estimates against lab results.
+    alerts : AlertStatistics
+        The alerts the session raised (see ``alerts.csv``).
     elapsed : float
         Wall time of the replay, report included.
     report_seconds : float
@@ -271,6 +578,7 @@ class ReplaySummary:
     activity_rmse: float | None = None
     activity_max_error: float | None = None
     lab: list[LabAccuracy] = field(default_factory=list)
+    alerts: AlertStatistics = field(default_factory=AlertStatistics)
     elapsed: float = 0.0
     report_seconds: float = 0.0
     steps_per_second: float = 0.0
@@ -346,6 +654,10 @@ class ReplaySeries:
         [-].
     measurements : list of MeasurementSeries
         Every measured tag.
+    alert_intervals : list of AlertInterval
+        Activations to draw, in time order (the first few thousand).
+    alert_log : list of AlertEvent
+        The first :data:`ALERT_LOG_ROWS` alert transitions, for the page's table.
     """
 
     vessels: tuple[str, ...]
@@ -364,6 +676,8 @@ class ReplaySeries:
     truth_concentration: FloatArray | None = None
     truth_activity: FloatArray | None = None
     measurements: list[MeasurementSeries] = field(default_factory=list)
+    alert_intervals: list[AlertInterval] = field(default_factory=list)
+    alert_log: list[AlertEvent] = field(default_factory=list)
 
 
 def nis_statistics(nis_sum: float, dof: int, updates: int) -> NisStatistics:
@@ -433,6 +747,7 @@ def write_report(out: Path, summary: ReplaySummary, series: ReplaySeries) -> Pat
     plots = Path(out) / "plots"
     plots.mkdir(parents=True, exist_ok=True)
     figures: list[tuple[str, str, str]] = []  # section, file name, caption
+    timeline: str | None = None
     if len(series.time):
         for i, vessel in enumerate(series.vessels):
             name = f"concentration-{_slug(vessel)}.png"
@@ -447,27 +762,29 @@ def write_report(out: Path, summary: ReplaySummary, series: ReplaySeries) -> Pat
             )
         for i, vessel in enumerate(series.vessels):
             name = f"conversion-{_slug(vessel)}.png"
-            _conversion_plot(plots / name, series, i)
+            drawn = _conversion_plot(plots / name, series, i)
             figures.append(
                 (
                     "Conversion against design",
                     name,
                     f"{vessel}: {series.reactant} conversion estimated (band: 1-sigma) and "
-                    "expected by the design model at the same inputs (dashed)",
+                    "expected by the design model at the same inputs (dashed)"
+                    + _alert_caption(drawn, f"about {vessel} or the whole train"),
                 )
             )
-        _activity_plot(plots / "activity.png", series)
+        drawn = _activity_plot(plots / "activity.png", series)
         figures.append(
             (
                 "Catalyst activity",
                 "activity.png",
                 "Estimated activity, shaded 1-sigma band"
-                + ("; dashed: truth" if series.truth_activity is not None else ""),
+                + ("; dashed: truth" if series.truth_activity is not None else "")
+                + _alert_caption(drawn, "about the whole train"),
             )
         )
         for meas in series.measurements:
             name = f"measurement-{_slug(meas.tag)}.png"
-            _measurement_plot(plots / name, series, meas)
+            drawn = _measurement_plot(plots / name, series, meas)
             where = "the feed" if meas.location == "feed" else meas.location
             figures.append(
                 (
@@ -475,12 +792,26 @@ def write_report(out: Path, summary: ReplaySummary, series: ReplaySeries) -> Pat
                     name,
                     f"{meas.tag} ({meas.kind}, {meas.species} in {where}): readings used "
                     f"(dots, bin means) and gated ({meas.gated_total}, crosses) against the "
-                    "estimate at their sample time",
+                    "estimate at their sample time" + _alert_caption(drawn, f"about {meas.tag}"),
                 )
             )
+        if series.alert_intervals:
+            timeline = "alerts.png"
+            _alert_timeline(plots / timeline, series)
     page = Path(out) / "report.html"
-    page.write_text(_page(summary, figures), encoding="utf-8")
+    page.write_text(_page(summary, figures, series.alert_log, timeline), encoding="utf-8")
     return page
+
+
+def _alert_caption(drawn: dict[str, int], about: str) -> str:
+    """Caption words for the alert spans a plot carries (empty when it carries none)."""
+    if not drawn:
+        return ""
+    counts = ", ".join(f"{drawn[p]} {p}" for p in _PRIORITIES if drawn.get(p))
+    return (
+        f"; shaded from activation to clearing, a line at each activation: alerts {about} "
+        f"({counts}; colour, hatching and line style by priority)"
+    )
 
 
 # ---------------------------------------------------------------------- plots
@@ -561,7 +892,7 @@ def _concentration_plot(path: Path, series: ReplaySeries, vessel: int) -> None:
     _save(fig, path)
 
 
-def _conversion_plot(path: Path, series: ReplaySeries, vessel: int) -> None:
+def _conversion_plot(path: Path, series: ReplaySeries, vessel: int) -> dict[str, int]:
     fig, axes = _figure(1)
     ax = axes[0]
     _band(
@@ -574,18 +905,20 @@ def _conversion_plot(path: Path, series: ReplaySeries, vessel: int) -> None:
     ax.plot(
         _dates(series.time),
         100 * series.design_conversion[:, vessel],
-        color=_ORANGE,
+        color=_BLACK,
         linestyle="--",
         linewidth=1.4,
         label="design expectation",
     )
+    drawn = _draw_alerts(ax, series, _alerts_about(series, vessel=series.vessels[vessel]))
     ax.set_ylabel(f"{series.reactant} conversion\n[%]")
-    ax.legend(loc="best", fontsize="small", frameon=False)
+    _legend(ax, drawn)
     ax.set_title(f"{series.vessels[vessel]}: conversion after this vessel", loc="left")
     _save(fig, path)
+    return drawn
 
 
-def _activity_plot(path: Path, series: ReplaySeries) -> None:
+def _activity_plot(path: Path, series: ReplaySeries) -> dict[str, int]:
     fig, axes = _figure(1)
     ax = axes[0]
     _band(ax, series.time, series.activity, series.activity_std, "estimate")
@@ -598,13 +931,15 @@ def _activity_plot(path: Path, series: ReplaySeries) -> None:
             linewidth=0.9,
             label="truth",
         )
+    drawn = _draw_alerts(ax, series, _alerts_about(series))
     ax.set_ylabel("activity [-]")
-    ax.legend(loc="best", fontsize="small", frameon=False)
+    _legend(ax, drawn)
     ax.set_title("Catalyst activity (1 = design)", loc="left")
     _save(fig, path)
+    return drawn
 
 
-def _measurement_plot(path: Path, series: ReplaySeries, meas: MeasurementSeries) -> None:
+def _measurement_plot(path: Path, series: ReplaySeries, meas: MeasurementSeries) -> dict[str, int]:
     fig, axes = _figure(1)
     ax = axes[0]
     s = series.species.index(meas.species)
@@ -668,10 +1003,148 @@ def _measurement_plot(path: Path, series: ReplaySeries, meas: MeasurementSeries)
                 f"{outside} gated reading(s) off scale", loc="right", fontsize="small",
                 color=_VERMILLION,
             )  # fmt: skip
+    drawn = _draw_alerts(ax, series, _alerts_about(series, tag=meas.tag))
     where = "feed" if meas.location == "feed" else meas.location
     ax.set_ylabel(f"{meas.species}, {where}\n[mol/m³]")
     ax.legend(loc="best", fontsize="small", framealpha=0.85, ncol=2)
     ax.set_title(f"{meas.tag}: readings against the estimate", loc="left")
+    _save(fig, path)
+    return drawn
+
+
+def _legend(ax: Any, drawn: dict[str, int]) -> None:
+    """Legend of a time plot; framed when alert spans lie under it."""
+    if drawn:
+        ax.legend(loc="best", fontsize="small", framealpha=0.85, ncol=2)
+    else:
+        ax.legend(loc="best", fontsize="small", frameon=False)
+
+
+def _alerts_about(
+    series: ReplaySeries, *, vessel: str | None = None, tag: str | None = None
+) -> list[AlertInterval]:
+    """Return the activations a plot carries.
+
+    A tag's plot: the tag's health alerts. Otherwise the alerts about the whole
+    train (activity, model agreement, feed flow), and with ``vessel`` also those
+    about that vessel (conversion shortfall, temperature range).
+    """
+    if tag is not None:
+        return [i for i in series.alert_intervals if i.rule in _TAG_RULES and i.subject == tag]
+    return [
+        i
+        for i in series.alert_intervals
+        if i.rule in _TRAIN_RULES
+        or (vessel is not None and i.subject == vessel and i.rule not in _TAG_RULES)
+    ]
+
+
+def _draw_alerts(ax: Any, series: ReplaySeries, intervals: list[AlertInterval]) -> dict[str, int]:
+    """Shade each activation to its clearing and mark the activation; return counts by priority.
+
+    Spans are clipped to the plotted time range; one still active at the end runs
+    to it. The first span of each priority carries the legend entry. Drawn below
+    the estimates, the most urgent on top.
+    """
+    drawn: dict[str, int] = {}
+    if not intervals or not len(series.time):
+        return drawn
+    t0, t1 = float(series.time[0]), float(series.time[-1])
+    rank = {p: i for i, p in enumerate(_PRIORITIES)}
+    for interval in sorted(intervals, key=lambda i: -rank.get(i.priority, len(rank))):
+        end = interval.end if math.isfinite(interval.end) else t1
+        start, end = max(interval.start, t0), min(end, t1)
+        if end < start:
+            continue
+        colour, hatch, style = _PRIORITY_STYLE.get(interval.priority, (_BLACK, "xx", "--"))
+        first = interval.priority not in drawn
+        x0, x1 = _dates(np.array([start, end]))
+        ax.axvspan(
+            x0,
+            x1,
+            facecolor=colour,
+            edgecolor=colour,
+            alpha=0.22,
+            hatch=hatch,
+            linewidth=0.0,
+            label=f"{interval.priority} alert" if first else "_nolegend_",
+            zorder=0.6,
+        )
+        ax.axvline(x0, color=colour, linestyle=style, linewidth=1.3, zorder=1.5)
+        drawn[interval.priority] = drawn.get(interval.priority, 0) + 1
+    return drawn
+
+
+def _alert_timeline(path: Path, series: ReplaySeries) -> None:
+    """One row per alert, a bar from each activation to its clearing, by priority."""
+    import matplotlib.dates as mdates
+    import matplotlib.pyplot as plt
+    from matplotlib.legend_handler import HandlerTuple
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+
+    intervals = series.alert_intervals
+    count: dict[str, int] = {}
+    first: dict[str, float] = {}
+    for interval in intervals:
+        count[interval.alert_id] = count.get(interval.alert_id, 0) + 1
+        first.setdefault(interval.alert_id, interval.start)
+    ids = sorted(count, key=lambda a: (-count[a], first[a]))[:_TIMELINE_ROWS]
+    ids.sort(key=lambda a: first[a])
+    row = {a: i for i, a in enumerate(ids)}
+    height = 1.3 + 0.3 * len(ids)
+    fig, ax = plt.subplots(figsize=(_WIDTH, height))
+    fig.subplots_adjust(
+        left=3.0 / _WIDTH, right=1 - 0.25 / _WIDTH, bottom=0.62 / height, top=1 - 0.45 / height
+    )
+    t0, t1 = float(series.time[0]), float(series.time[-1])
+    x_first, x_last = mdates.date2num(_dates(np.array([t0, t1])))
+    markers = {"high": "D", "warning": "^", "advisory": "o"}
+    for interval in intervals:
+        if interval.alert_id not in row:
+            continue
+        y = row[interval.alert_id]
+        end = interval.end if math.isfinite(interval.end) else t1
+        x0, x1 = mdates.date2num(_dates(np.array([interval.start, max(end, interval.start)])))
+        colour, hatch, _ = _PRIORITY_STYLE.get(interval.priority, (_BLACK, "xx", "--"))
+        ax.barh(
+            y, x1 - x0, left=x0, height=0.6, color=colour, alpha=0.45, hatch=hatch,
+            edgecolor=colour, linewidth=0.8,
+        )  # fmt: skip
+        ax.plot(
+            [x0], [y], linestyle="none", marker=markers.get(interval.priority, "s"),
+            color=colour, markersize=5, markeredgecolor=_BLACK, markeredgewidth=0.5,
+        )  # fmt: skip
+    ax.set_yticks(range(len(ids)), ids, fontsize="small")
+    ax.set_ylim(len(ids) - 0.5, -0.5)
+    ax.set_xlim(x_first, x_last)
+    locator = mdates.AutoDateLocator()
+    ax.xaxis.set_major_locator(locator)
+    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
+    ax.set_xlabel("time (UTC)")
+    ax.grid(True, axis="x", color="#dddddd", linewidth=0.6)
+    ax.set_axisbelow(True)
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    present = [p for p in _PRIORITIES if any(i.priority == p for i in intervals)]
+    handles: list[Any] = []
+    for p in present:
+        colour, hatch, _ = _PRIORITY_STYLE[p]
+        bar = Patch(facecolor=colour, alpha=0.45, hatch=hatch, edgecolor=colour)
+        mark = Line2D(
+            [], [], linestyle="none", marker=markers[p], color=colour, markeredgecolor=_BLACK,
+            markeredgewidth=0.5,
+        )  # fmt: skip
+        handles.append((bar, mark))
+    ax.legend(
+        handles, [f"{p}: activation to clearing" for p in present],
+        handler_map={tuple: HandlerTuple(ndivide=None)}, loc="lower left",
+        bbox_to_anchor=(0.0, 1.0), ncol=max(len(handles), 1), fontsize="small", frameon=False,
+    )  # fmt: skip
+    if len(count) > len(ids):
+        ax.set_xlabel(
+            f"time (UTC); the {len(ids)} alerts activated most often of {len(count)} shown"
+        )
     _save(fig, path)
 
 
@@ -684,6 +1157,7 @@ _FILES = (
     ("gated.csv", "readings rejected at the innovation gate, with the reason"),
     ("steps.csv", "readings taken as a real step after repeated gating"),
     ("refused.csv", "readings not taken (unknown, out of range, too old), with the reason"),
+    ("alerts.csv", "every alert transition: time, alert, priority, states, figure, message"),
     ("summary.json", "the figures on this page"),
 )
 
@@ -748,7 +1222,12 @@ def _nis_row(name: str, stats: NisStatistics) -> list[str]:
     ]
 
 
-def _page(summary: ReplaySummary, figures: list[tuple[str, str, str]]) -> str:
+def _page(
+    summary: ReplaySummary,
+    figures: list[tuple[str, str, str]],
+    alert_log: list[AlertEvent] | None = None,
+    timeline: str | None = None,
+) -> str:
     s = summary
     parts = [
         "<!DOCTYPE html>",
@@ -858,6 +1337,8 @@ def _page(summary: ReplaySummary, figures: list[tuple[str, str, str]]) -> str:
             _table(["lab tag", "measures", "results", "RMSE [mol/m³]", "bias"], rows, {2, 3, 4})
         )
 
+    parts += _alerts_section(s, alert_log or [], timeline)
+
     section = None
     for title, name, caption in figures:
         if title != section:
@@ -872,6 +1353,120 @@ def _page(summary: ReplaySummary, figures: list[tuple[str, str, str]]) -> str:
     parts.append(f'<p class="notice">{_e(DISCLAIMER)}</p>')
     parts.append("</body></html>")
     return "\n".join(parts) + "\n"
+
+
+_TAG_WORDS = {
+    "V": "read in a retrieved text",
+    "M": "from memory, not confirmed",
+    "CP": "common practice, no source",
+}
+
+
+def _alerts_section(
+    summary: ReplaySummary, log: list[AlertEvent], timeline: str | None
+) -> list[str]:
+    """Return the page's "Alerts" section: counts, rates against guidance, timeline, log."""
+    a = summary.alerts
+    parts = ["<h2>Alerts</h2>"]
+    parts.append(
+        f"<p>The session ran the train's alert rules on every estimate as it was first "
+        f"produced: {a.activations:,} activation(s) and {a.events:,} transition(s) in "
+        "all (see alerts.csv). An alert is judged once, in plant time; a later revision "
+        "of the estimates (after a late lab result) does not re-judge it. Alerts are "
+        "advice from a monitoring aid: they do not replace the plant's alarm system.</p>"
+    )
+    if a.out_of_order:
+        parts.append(
+            f'<p class="notice">{a.out_of_order:,} alert transition(s) were stamped '
+            "earlier than the one before them.</p>"
+        )
+    if a.by_alert:
+        kinds = {"process": "process", "health": "estimator health", "inputs": "model inputs"}
+        active = set(a.active_at_end)
+        rows = [
+            [
+                _e(alert_id),
+                _e(kinds.get(RULE_KINDS.get(alert_id.partition(":")[0], ""), "other")),
+                f"{n:,}",
+                "active" if alert_id in active else "",
+            ]
+            for alert_id, n in a.by_alert.items()
+        ]
+        parts.append(_table(["alert", "watches", "activations", "at the end"], rows, {2}))
+    by_priority = ", ".join(f"{p} {a.by_priority.get(p, 0):,}" for p in _PRIORITIES)
+    by_kind = ", ".join(f"{k} {n:,}" for k, n in a.by_kind.items()) or "none"
+    parts.append(
+        f"<p>Activations by priority: {_e(by_priority)}. By what the rule watches: "
+        f"{_e(by_kind)}. Chattering alerts (3 or more activations of one alert within "
+        f"60 s): {a.chattering:,}"
+        + (f" ({_e(', '.join(a.chattering_alerts))})" if a.chattering_alerts else "")
+        + ".</p>"
+    )
+    parts.append(
+        "<p>Alarm rates beside the alarm-management guidance. Rates count activations "
+        "in whole 10-minute periods and UTC days over the replayed span. The guidance "
+        "is written for every alarm one operator position sees, over 30 days or more: a "
+        "train's stagewatch alerts are one contributor and should use a small part of it. "
+        "Confidence as the project's references tag it: [V] read in a retrieved text, "
+        "[M] from memory, not confirmed.</p>"
+    )
+    rows = []
+    for g in a.guidance:
+        verdict = "–" if g.within is None else _verdict_words(g.within)
+        rows.append(
+            [
+                _e(g.metric),
+                _e(g.measured),
+                _e(g.guidance),
+                _e(g.source),
+                _e(f"[{g.tag}] {_TAG_WORDS.get(g.tag, '')}".strip()),
+                verdict,
+            ]
+        )
+    parts.append(
+        _table(["figure", "this replay", "guidance", "source", "confidence", ""], rows, {1})
+    )
+    if timeline is not None:
+        caption = (
+            "Alerts raised: one row per alert, a bar from each activation to its clearing "
+            "(to the end when still active), colour, hatching and marker by priority"
+        )
+        parts.append(
+            f'<figure><img src="plots/{_e(timeline)}" alt="{_e(caption)}">'
+            f"<figcaption>{_e(caption)}</figcaption></figure>"
+        )
+    if log:
+        parts.append(
+            f"<p>The alert log: the first {len(log):,} of {a.events:,} transition(s), "
+            "oldest first (alerts.csv holds every one).</p>"
+        )
+        rows = [
+            [
+                _e(_when(e.time)),
+                _e(e.alert_id),
+                _e(e.priority),
+                _e(f"{e.from_state} → {e.to_state}"),
+                _num(e.figure),
+                _num(e.threshold),
+                _e(e.unit),
+                _e(e.message),
+            ]
+            for e in log
+        ]
+        parts.append(
+            _table(
+                ["time (UTC)", "alert", "priority", "change", "figure", "limit", "unit", "message"],
+                rows,
+                {4, 5},
+            )  # fmt: skip
+        )
+    else:
+        parts.append("<p>No alert was raised.</p>")
+    return parts
+
+
+def _verdict_words(within: bool) -> str:
+    return '<span class="ok">within</span>' if within else '<span class="no">beyond</span>'
 
 
 def _json_ready(value: Any) -> Any:
