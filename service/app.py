@@ -5,8 +5,10 @@ session) are made in the lifespan, so importing this module is cheap. Handlers a
 plain ``def`` where they touch the database or a session (FastAPI runs them in its
 thread pool) and ``async`` only for the live stream.
 
-Roles: read (estimates, trains, gated readings), ingest (post readings), admin
-(create, update and retire trains). /healthz and /readyz answer without a key.
+Roles: read (estimates, trains, gated readings, alerts and their log), ingest (post
+readings; acknowledge, shelve and unshelve alerts), admin (create, update and retire
+trains; take alerts out of service and return them). /healthz and /readyz answer
+without a key. An operator's action is logged under the name of the API key used.
 """
 
 from __future__ import annotations
@@ -27,21 +29,40 @@ from fastapi.openapi.utils import get_openapi
 from fastapi.responses import JSONResponse
 from fastapi.sse import EventSourceResponse, ServerSentEvent
 
+from estimator.alerts import Alert, AlertActionError
 from estimator.config import TrainConfig, parse_train_config
 from estimator.errors import ConfigError
 from estimator.model import TrainModel
 from estimator.observability import observability_report
-from service.auth import AdminAccess, IngestAccess, ReadAccess
-from service.hub import Hub, Runtime, UnknownTrain, estimate_public
+from service.auth import AdminAccess, Caller, IngestAccess, ReadAccess
+from service.hub import (
+    AlertAction,
+    Hub,
+    Runtime,
+    ShelveRefused,
+    UnknownAlert,
+    UnknownTrain,
+    alert_event_public,
+    estimate_public,
+)
 from service.metrics import configure_logging
 from service.schemas import (
+    AlertActionIn,
+    AlertActionResult,
+    AlertEventPublic,
+    AlertEventsPublic,
+    AlertPublic,
+    AlertsPublic,
+    AlertStateName,
     EstimatePublic,
     EstimatesPublic,
     GatedListPublic,
     GatedPublic,
     IngestResult,
     ObservabilityPublic,
+    PriorityName,
     ReadingsIn,
+    ShelveIn,
     TrainIn,
     TrainPublic,
     TrainsPublic,
@@ -100,6 +121,19 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
     @app.exception_handler(UnknownTrain)
     async def unknown_train(_: Request, exc: UnknownTrain) -> JSONResponse:
         return JSONResponse({"detail": f"no train named {exc.args[0]!r}"}, status_code=404)
+
+    @app.exception_handler(UnknownAlert)
+    async def unknown_alert(_: Request, exc: UnknownAlert) -> JSONResponse:
+        return JSONResponse({"detail": str(exc)}, status_code=404)
+
+    @app.exception_handler(AlertActionError)
+    async def alert_action_refused(_: Request, exc: AlertActionError) -> JSONResponse:
+        return JSONResponse({"detail": str(exc)}, status_code=409)
+
+    @app.exception_handler(ShelveRefused)
+    async def shelve_refused(_: Request, exc: ShelveRefused) -> JSONResponse:
+        detail = [{"loc": ["body", "until"], "msg": str(exc), "type": "value_error"}]
+        return JSONResponse({"detail": detail}, status_code=422)
 
     @app.exception_handler(StoreUnavailable)
     async def store_unavailable(_: Request, exc: StoreUnavailable) -> JSONResponse:
@@ -240,6 +274,100 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
             message=report.message(),
         )
 
+    @app.get(f"{API}/trains/{{name}}/alerts", tags=["alerts"])
+    def list_alerts(
+        name: str,
+        request: Request,
+        _: ReadAccess,
+        state: Annotated[
+            list[AlertStateName] | None,
+            Query(description="Only these states (repeat for several); default: all but normal"),
+        ] = None,
+        priority: Annotated[
+            list[PriorityName] | None, Query(description="Only these priorities")
+        ] = None,
+        subject: Annotated[str | None, Query(description="Only this vessel, tag or train")] = None,
+    ) -> AlertsPublic:
+        """List the train's current alerts (all but normal unless asked), most urgent first."""
+        states = set(state) if state else None
+        data = [
+            _alert_public(a)
+            for a in _hub(request).alerts(name)
+            if (a.state != "normal" if states is None else a.state in states)
+            and (not priority or a.priority in priority)
+            and (subject is None or a.subject == subject)
+        ]
+        return AlertsPublic(data=data, count=len(data))
+
+    @app.get(f"{API}/trains/{{name}}/alerts/events", tags=["alerts"])
+    def read_alert_events(
+        name: str,
+        request: Request,
+        _: ReadAccess,
+        start: Annotated[float | None, Query(description="Epoch seconds [s]")] = None,
+        end: Annotated[float | None, Query(description="Epoch seconds [s]")] = None,
+        alert_id: Annotated[str | None, Query(description="Only this alert's events")] = None,
+    ) -> AlertEventsPublic:
+        """Return the log of alert transitions with start <= time < end, in log order."""
+        hub = _hub(request)
+        events = hub.store.read_alert_events(hub.get(name).train_id, start, end, alert_id)
+        data = [AlertEventPublic.model_validate(alert_event_public(name, e)) for e in events]
+        return AlertEventsPublic(data=data, count=len(data))
+
+    def act(
+        request: Request,
+        name: str,
+        alert_id: str,
+        action: AlertAction,
+        caller: Caller,
+        reason: str,
+        until: float | None = None,
+    ) -> AlertActionResult:
+        event, alert = _hub(request).alert_action(
+            name, alert_id, action, who=caller.name, why=reason, now=time.time(), until=until
+        )
+        return AlertActionResult(
+            event=AlertEventPublic.model_validate(alert_event_public(name, event)),
+            alert=_alert_public(alert),
+        )
+
+    alert_path = f"{API}/trains/{{name}}/alerts/{{alert_id:path}}"
+
+    @app.post(f"{alert_path}/acknowledge", tags=["alerts"])
+    def acknowledge_alert(
+        name: str, alert_id: str, body: AlertActionIn, request: Request, caller: IngestAccess
+    ) -> AlertActionResult:
+        """Acknowledge an alert (role ingest); 409 when it has nothing to acknowledge."""
+        return act(request, name, alert_id, "acknowledge", caller, body.reason)
+
+    @app.post(f"{alert_path}/shelve", tags=["alerts"])
+    def shelve_alert(
+        name: str, alert_id: str, body: ShelveIn, request: Request, caller: IngestAccess
+    ) -> AlertActionResult:
+        """Shelve an alert until a time within alerts.max_shelve (role ingest); 422 beyond."""
+        return act(request, name, alert_id, "shelve", caller, body.reason, body.until)
+
+    @app.post(f"{alert_path}/unshelve", tags=["alerts"])
+    def unshelve_alert(
+        name: str, alert_id: str, body: AlertActionIn, request: Request, caller: IngestAccess
+    ) -> AlertActionResult:
+        """End a shelving early (role ingest); the alert takes the state its condition gives."""
+        return act(request, name, alert_id, "unshelve", caller, body.reason)
+
+    @app.post(f"{alert_path}/remove-from-service", tags=["alerts"])
+    def remove_alert_from_service(
+        name: str, alert_id: str, body: AlertActionIn, request: Request, caller: AdminAccess
+    ) -> AlertActionResult:
+        """Take an alert out of service until returned (role admin: a change of the system)."""
+        return act(request, name, alert_id, "remove_from_service", caller, body.reason)
+
+    @app.post(f"{alert_path}/return-to-service", tags=["alerts"])
+    def return_alert_to_service(
+        name: str, alert_id: str, body: AlertActionIn, request: Request, caller: AdminAccess
+    ) -> AlertActionResult:
+        """Return an out-of-service alert to service (role admin)."""
+        return act(request, name, alert_id, "return_to_service", caller, body.reason)
+
     @app.get(
         f"{API}/trains/{{name}}/stream", tags=["estimates"], response_class=EventSourceResponse
     )
@@ -249,7 +377,7 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
         _: ReadAccess,
         last_event_id: Annotated[str | None, Header()] = None,
     ) -> AsyncIterator[ServerSentEvent]:
-        """Stream live estimates as server-sent events; resume with Last-Event-ID (a time)."""
+        """Stream live estimates and alert events (SSE); resume estimates with Last-Event-ID."""
         hub = _hub(request)
         runtime = hub.get(name)
         queue = hub.subscribe(name)
@@ -268,10 +396,13 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
                         yield _event(runtime, row)
                         sent = row["t"]
             while True:
-                row = await queue.get()
-                if row["t"] > sent or last_event_id is None:
-                    yield _event(runtime, row)
-                    sent = max(sent, row["t"])
+                kind, item = await queue.get()
+                if kind == "alert":
+                    # No id: a client's Last-Event-ID stays the last estimate's time.
+                    yield ServerSentEvent(data=item, event="alert")
+                elif item["t"] > sent or last_event_id is None:
+                    yield _event(runtime, item)
+                    sent = max(sent, item["t"])
         finally:
             hub.unsubscribe(name, queue)
 
@@ -298,7 +429,9 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
                             media["schema"] = {
                                 "type": "string",
                                 "description": "Events 'estimate' whose data is an "
-                                "EstimatePublic document and whose id is its time",
+                                "EstimatePublic document and whose id is its time, and "
+                                "events 'alert' (no id) whose data is an "
+                                "AlertEventPublic document",
                             }
             app.openapi_schema = spec
         return app.openapi_schema
@@ -311,6 +444,10 @@ def _event(runtime: Runtime, row: dict[str, Any]) -> ServerSentEvent:
     return ServerSentEvent(
         data=estimate_public(runtime.config, row), event="estimate", id=repr(row["t"])
     )
+
+
+def _alert_public(alert: Alert) -> AlertPublic:
+    return AlertPublic.model_validate(alert, from_attributes=True)
 
 
 def _hub(request: Request) -> Hub:

@@ -3,10 +3,17 @@
 The hub holds a :class:`~estimator.session.TrainSession` per train and carries a
 posted batch through the one path that keeps the promise "no accepted reading is
 lost": screen (unknown tag, not finite, out of range, too old, too far in the
-future) -> journal (committed, idempotent) -> session -> estimates and gated
-readings stored -> live subscribers told. At start it restores each train from its
-latest checkpoint and replays the journal after it, so a killed service continues
-as if nothing happened.
+future) -> journal (committed, idempotent) -> session -> estimates, gated readings
+and alert events stored -> live subscribers and webhooks told. At start it restores
+each train from its latest checkpoint and replays the journal after it, so a killed
+service continues as if nothing happened.
+
+Alerts: the session's alert engine raises and clears them as estimates arrive (a
+shelving expires there too, in plant time). An operator's action (acknowledge,
+shelve, unshelve, remove from or return to service) runs under the train's lock at
+the wall-clock time of the request; its event and a checkpoint holding the new
+state are stored in one transaction, so a restart keeps the action, and a failed
+write leaves the alert as it was.
 
 No FastAPI here: the routes in :mod:`service.app` call these methods.
 """
@@ -20,22 +27,43 @@ import threading
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 
+from estimator.alerts import Alert, AlertActionError, AlertEngine, AlertEvent
 from estimator.config import TrainConfig
 from estimator.session import EstimateBatch, GatedReading, SessionOutput, TrainSession
 from service.metrics import ServiceMetrics
 from service.schemas import IngestResult, RefusedReading
 from service.settings import Settings
 from service.store import Store, TrainRecord
+from service.webhooks import WebhookSender
 
 log = logging.getLogger("stagewatch.hub")
 
 
 class UnknownTrain(LookupError):
     """No train of that name (or it is retired)."""
+
+
+class UnknownAlert(LookupError):
+    """The train has no alert of that id."""
+
+
+class ShelveRefused(ValueError):
+    """A shelving that ends before it starts or lasts beyond ``alerts.max_shelve``."""
+
+
+AlertAction = Literal[
+    "acknowledge", "shelve", "unshelve", "remove_from_service", "return_to_service"
+]
+"""An operator's action on an alert: the :class:`AlertEngine` method it calls."""
+
+#: What a subscriber's queue carries: ("estimate", stored row) or ("alert", event).
+LiveItem = tuple[Literal["estimate", "alert"], dict[str, Any]]
+
+_PRIORITY_ORDER = {"high": 0, "warning": 1, "advisory": 2}
 
 
 @dataclass
@@ -51,9 +79,10 @@ class Runtime:
     journal_seq: int = 0
     checkpoint_time: float = -math.inf
     latest: dict[str, Any] | None = None
-    subscribers: set[tuple[asyncio.AbstractEventLoop, asyncio.Queue[dict[str, Any]]]] = field(
+    subscribers: set[tuple[asyncio.AbstractEventLoop, asyncio.Queue[LiveItem]]] = field(
         default_factory=set
     )
+    alerts: list[Alert] = field(default_factory=list)
 
 
 def estimate_rows(config: TrainConfig, batch: EstimateBatch) -> list[dict[str, Any]]:
@@ -109,6 +138,22 @@ def estimate_public(config: TrainConfig, row: dict[str, Any]) -> dict[str, Any]:
     }
 
 
+def alert_event_public(train: str, event: AlertEvent) -> dict[str, Any]:
+    """Return an alert event in the API's form (:class:`AlertEventPublic`), JSON-ready."""
+    data = event.to_dict()
+    return {
+        "train": train,
+        **data,
+        "time_utc": datetime.fromtimestamp(event.time, UTC).isoformat(),
+    }
+
+
+def alert_order(alert: Alert) -> tuple[int, float]:
+    """Sort key of alerts: most urgent first, then the earliest activated."""
+    activated = alert.activated_at if alert.activated_at is not None else math.inf
+    return _PRIORITY_ORDER.get(alert.priority, len(_PRIORITY_ORDER)), activated
+
+
 def gated_rows(records: Sequence[GatedReading], decision: str) -> list[dict[str, Any]]:
     """Gated readings (or steps) as rows for the store."""
     return [
@@ -137,6 +182,9 @@ class Hub:
         self._lock = threading.Lock()
         self.ready = False
         self.metrics = ServiceMetrics(self.estimate_times)
+        self.webhooks: WebhookSender | None = None
+        if settings.webhooks:
+            self.webhooks = WebhookSender(settings.webhooks, registry=self.metrics.registry)
 
     # ------------------------------------------------------------------ lifecycle
 
@@ -144,13 +192,17 @@ class Hub:
         """Load every live train: restore its checkpoint, replay the journal after it."""
         for record in self.store.list_trains():
             self._load(record)
+        if self.webhooks is not None:
+            self.webhooks.start()
         self.ready = True
 
     def stop(self) -> None:
-        """Checkpoint every train (graceful shutdown)."""
+        """Checkpoint every train (graceful shutdown) and stop the webhook sender."""
         for runtime in list(self.trains.values()):
             with runtime.lock:
                 self._checkpoint(runtime)
+        if self.webhooks is not None:
+            self.webhooks.stop()
 
     def _load(self, record: TrainRecord) -> Runtime:
         config = record.train_config()
@@ -165,16 +217,29 @@ class Hub:
                 # A checkpoint of an earlier config version (or unreadable): the
                 # readings after it belong to this version; start its filter afresh.
                 log.warning("train %s: starting afresh after its checkpoint (%s)", record.name, exc)
+        stored = self.store.last_alert_sequence(record.id)
         if session is None:
             session = TrainSession(config)
+            if saved is not None:
+                # The replay below starts past the journal's beginning, so the fresh
+                # engine would not log the stored events again: number after them.
+                _continue_sequence(session, stored)
+        elif session.alert_engine is not None:
+            # Events the checkpoint holds but the log lacks (a write lost after it).
+            missing = [e for e in session.alert_engine.events if e.sequence > stored]
+            if missing:
+                self.store.append_alert_events(record.id, missing)
         runtime = Runtime(record.name, record.id, record.version, config, session, journal_seq=seq)
         for ids, tags, times, values in self.store.readings_after(record.id, seq):
             out = session.ingest(list(tags), times, values)
-            self._store_output(runtime, out)
+            self._store_output(runtime, out, live=False)
             runtime.journal_seq = int(ids[-1])
+        # A replay that logged fewer events than the crashed run must not reuse numbers.
+        _continue_sequence(session, self.store.last_alert_sequence(record.id))
         latest = self.store.latest_estimate(record.id)
         runtime.latest = latest
         runtime.checkpoint_time = session.filter.t
+        _refresh_alerts(runtime)
         self.trains[record.name] = runtime
         return runtime
 
@@ -196,14 +261,27 @@ class Hub:
             return self._load(record)
 
     def update(self, name: str, config: TrainConfig, source_text: str) -> Runtime:
-        """Start a new config version: history stays; the session starts afresh."""
+        """Start a new config version: history stays; the session starts afresh.
+
+        The alerts carry over: their states (acknowledged, shelved, out of service),
+        timers and event numbering continue under the new config, which may add
+        alerts (they start normal) or drop some.
+        """
         runtime = self.get(name)
         with runtime.lock:
             self._checkpoint(runtime)
             version = self.store.add_train_version(name, config.model_dump_json(), source_text)
-            fresh = Runtime(name, runtime.train_id, version, config, TrainSession(config))
+            session = TrainSession(config)
+            old = runtime.session.alert_engine
+            if old is not None and session.alert_engine is not None:
+                session.alert_engine = AlertEngine.from_state_dict(config, old.state_dict())
+            fresh = Runtime(name, runtime.train_id, version, config, session)
             fresh.journal_seq = runtime.journal_seq
             fresh.subscribers = runtime.subscribers
+            # A restart before the new filter's first checkpoint would otherwise find
+            # only the old version's, which this config cannot restore.
+            self._checkpoint(fresh, force=True)
+            _refresh_alerts(fresh)
             self.trains[name] = fresh
         return fresh
 
@@ -234,9 +312,10 @@ class Hub:
             session = runtime.session
             codes = session.codes(tags)
             take, refusals = session.screen(codes, t, v, names=tags)
+            # Refused readings are echoed with the value as posted (the tag's unit).
             refused = [
                 RefusedReading(
-                    index=i, tag=r.tag, time=r.time, value=_json(r.value), reason=r.reason
+                    index=i, tag=r.tag, time=r.time, value=_json(float(v[i])), reason=r.reason
                 )
                 for i, r in zip(np.flatnonzero(~take).tolist(), refusals, strict=True)
             ]
@@ -283,23 +362,37 @@ class Hub:
             accepted=int(new.size), duplicates=len(result.duplicates), refused=refused
         )
 
-    def _store_output(self, runtime: Runtime, out: SessionOutput) -> None:
+    def _store_output(self, runtime: Runtime, out: SessionOutput, *, live: bool = True) -> None:
+        """Store what an ingest produced; tell subscribers and webhooks when ``live``."""
         rows = estimate_rows(runtime.config, out.estimates)
         if rows:
             self.store.write_estimates(runtime.train_id, rows)
             runtime.latest = rows[-1]
-            self._publish(runtime, rows)
+            if live:
+                self._publish(runtime, "estimate", rows)
         gated = gated_rows(out.gated, "gated") + gated_rows(out.steps, "step")
         if gated:
             self.store.upsert_gated(runtime.train_id, gated)
+        if out.alerts:
+            self.store.append_alert_events(runtime.train_id, out.alerts)
+            if live:
+                self._announce(runtime, out.alerts)
+        if rows or out.alerts:
+            _refresh_alerts(runtime)
         self.metrics.estimates.inc(len(rows))
 
-    def _checkpoint(self, runtime: Runtime) -> None:
-        if not runtime.session.filter.initialized:
+    def _checkpoint(
+        self, runtime: Runtime, *, force: bool = False, alert_events: Sequence[AlertEvent] = ()
+    ) -> None:
+        """Save the session; ``force`` saves one whose filter has not started yet."""
+        initialized = runtime.session.filter.initialized
+        if not (initialized or force):
             return
         self.store.save_checkpoint(
-            runtime.train_id, runtime.journal_seq, runtime.session.checkpoint()
+            runtime.train_id, runtime.journal_seq, runtime.session.checkpoint(), alert_events
         )
+        if not initialized:
+            return
         runtime.checkpoint_time = now = runtime.session.filter.t
         keep_readings = self.settings.retention_readings
         keep_estimates = self.settings.retention_estimates
@@ -318,34 +411,181 @@ class Hub:
             for name, r in list(self.trains.items())
         }
 
+    # ------------------------------------------------------------------ alerts
+
+    def alerts(self, name: str) -> list[Alert]:
+        """Every alert of a train as of its latest update, most urgent first."""
+        return list(self.get(name).alerts)
+
+    def alert_action(
+        self,
+        name: str,
+        alert_id: str,
+        action: AlertAction,
+        *,
+        who: str,
+        why: str,
+        now: float,
+        until: float | None = None,
+    ) -> tuple[AlertEvent, Alert]:
+        """Apply an operator's action to an alert; store, checkpoint and announce it.
+
+        Parameters
+        ----------
+        name : str
+            The train.
+        alert_id : str
+            The alert, ``"<rule>:<subject>"``.
+        action : AlertAction
+            What to do.
+        who : str
+            Who acts (the API key's name), logged with the event.
+        why : str
+            The reason given, logged with the event.
+        now : float
+            When [s since the epoch]: the wall-clock time of the request.
+        until : float, optional
+            End of the shelving [s since the epoch]; ``shelve`` needs it.
+
+        Returns
+        -------
+        (AlertEvent, Alert)
+            The transition and the alert after it.
+
+        Raises
+        ------
+        UnknownTrain, UnknownAlert
+            No such train, or no such alert on it.
+        ShelveRefused
+            ``until`` not after ``now``, or beyond the train's ``alerts.max_shelve``.
+        AlertActionError
+            The action does not apply in the alert's state (the engine's words).
+        StoreUnavailable
+            The event could not be stored; the alert is left as it was.
+        """
+        runtime = self.get(name)
+        with runtime.lock:
+            session = runtime.session
+            engine = session.alert_engine
+            if engine is None:
+                raise UnknownAlert(f"train {name!r} runs no alert rules")
+            try:
+                engine.alert(alert_id)
+            except AlertActionError:
+                raise UnknownAlert(f"train {name!r} has no alert {alert_id!r}") from None
+            if action == "shelve":
+                _check_shelving(runtime.config, now, until)
+            before = engine.state_dict()
+            last = engine.events[-1].sequence if engine.events else -1
+            refused: AlertActionError | None = None
+            try:
+                if action == "shelve":
+                    assert until is not None
+                    engine.shelve(alert_id, until, now, who, why)
+                else:
+                    getattr(engine, action)(alert_id, now, who, why)
+            except AlertActionError as exc:
+                refused = exc
+            # A shelving that had expired by now is logged before the action (or its
+            # refusal): every new event is stored and announced.
+            events = [e for e in engine.events if e.sequence > last]
+            if events:
+                try:
+                    self._checkpoint(runtime, force=True, alert_events=events)
+                except Exception:
+                    session.alert_engine = AlertEngine.from_state_dict(runtime.config, before)
+                    raise
+                _refresh_alerts(runtime)
+                self._announce(runtime, events)
+            if refused is not None:
+                raise refused
+            return events[-1], engine.alert(alert_id)
+
+    def _announce(self, runtime: Runtime, events: Sequence[AlertEvent]) -> None:
+        """Send alert events to the live subscribers and the webhooks."""
+        payloads = [alert_event_public(runtime.name, e) for e in events]
+        self._publish(runtime, "alert", payloads)
+        if self.webhooks is not None:
+            for payload in payloads:
+                self.webhooks.offer(payload)
+
     # ------------------------------------------------------------------ live
 
-    def subscribe(self, name: str) -> asyncio.Queue[dict[str, Any]]:
-        """Return a queue that receives every new estimate row of a train."""
+    def subscribe(self, name: str) -> asyncio.Queue[LiveItem]:
+        """Return a queue that receives every new estimate row and alert event of a train.
+
+        Items are ``("estimate", stored row)`` and ``("alert", AlertEventPublic data)``.
+        """
         runtime = self.get(name)
-        queue: asyncio.Queue[dict[str, Any]] = asyncio.Queue(maxsize=1000)
+        queue: asyncio.Queue[LiveItem] = asyncio.Queue(maxsize=1000)
         runtime.subscribers.add((asyncio.get_running_loop(), queue))
         return queue
 
-    def unsubscribe(self, name: str, queue: asyncio.Queue[dict[str, Any]]) -> None:
+    def unsubscribe(self, name: str, queue: asyncio.Queue[LiveItem]) -> None:
         """Stop sending to a queue."""
         runtime = self.trains.get(name)
         if runtime is None:
             return
         runtime.subscribers = {s for s in runtime.subscribers if s[1] is not queue}
 
-    def _publish(self, runtime: Runtime, rows: list[dict[str, Any]]) -> None:
+    def _publish(
+        self,
+        runtime: Runtime,
+        kind: Literal["estimate", "alert"],
+        items: list[dict[str, Any]],
+    ) -> None:
         for loop, queue in list(runtime.subscribers):
-            for row in rows:
-                loop.call_soon_threadsafe(_offer, queue, row)
+            for item in items:
+                loop.call_soon_threadsafe(_offer, queue, (kind, item))
 
 
-def _offer(queue: asyncio.Queue[dict[str, Any]], row: dict[str, Any]) -> None:
-    """Put without blocking; a subscriber too slow to keep up misses rows, not the hub."""
+def _offer(queue: asyncio.Queue[LiveItem], item: LiveItem) -> None:
+    """Put without blocking; a subscriber too slow to keep up misses items, not the hub."""
     try:
-        queue.put_nowait(row)
+        queue.put_nowait(item)
     except asyncio.QueueFull:
         pass
+
+
+def _refresh_alerts(runtime: Runtime) -> None:
+    """Take a snapshot of the train's alerts, for readers that must not wait for the lock."""
+    engine = runtime.session.alert_engine
+    runtime.alerts = [] if engine is None else sorted(engine.alerts(), key=alert_order)
+
+
+def _continue_sequence(session: TrainSession, after: int) -> None:
+    """Make the session's alert engine number its next events after ``after``."""
+    engine = session.alert_engine
+    if engine is None:
+        return
+    if engine.events and engine.events[-1].sequence >= after:
+        return
+    state = engine.state_dict()
+    if int(state["book"]["sequence"]) >= after:
+        return
+    state["book"]["sequence"] = after
+    session.alert_engine = AlertEngine.from_state_dict(session.config, state)
+
+
+def _check_shelving(config: TrainConfig, now: float, until: float | None) -> None:
+    """Refuse a shelving that ends before it starts or lasts too long."""
+    if until is None or not math.isfinite(until):
+        raise ShelveRefused("give 'until', the time the shelving ends")
+    limit = config.alerts.max_shelve
+    if until <= now:
+        raise ShelveRefused(
+            f"'until' ({_utc(until)}) must be after now ({_utc(now)}): shelving ends "
+            "after it starts"
+        )
+    if until - now > limit:
+        raise ShelveRefused(
+            f"shelving is limited to {limit / 3600.0:g} h on this train (alerts.max_shelve); "
+            f"'until' ({_utc(until)}) is {(until - now) / 3600.0:.3g} h from now"
+        )
+
+
+def _utc(seconds: float) -> str:
+    return datetime.fromtimestamp(seconds, UTC).isoformat(timespec="seconds")
 
 
 def _json(value: float) -> float | None:

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import math
 from datetime import datetime
-from typing import Annotated, Any
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, BeforeValidator, ConfigDict, Field
 
@@ -180,6 +180,109 @@ class ObservabilityPublic(BaseModel):
     unobservable: list[str]
     suggestions: list[str]
     message: str
+
+
+AlertStateName = Literal[
+    "normal",
+    "active_unacknowledged",
+    "active_acknowledged",
+    "cleared_unacknowledged",
+    "shelved",
+    "out_of_service",
+]
+"""The ISA-18.2 / IEC 62682 states an alert can be in."""
+
+PriorityName = Literal["high", "warning", "advisory"]
+"""How urgently an alert asks for attention, most urgent first."""
+
+
+class AlertPublic(BaseModel):
+    """One alert of a train and its state now."""
+
+    alert_id: str = Field(description="'<rule>:<subject>', e.g. 'conversion_shortfall_high:R-201'")
+    rule: str
+    subject: str = Field(description="The vessel, tag or train the alert is about")
+    priority: PriorityName
+    title: str
+    state: AlertStateName
+    condition_active: bool = Field(
+        description="Whether the rule's condition holds (after its delays), shelved or not"
+    )
+    since: float | None = Field(description="Last state change, epoch seconds [s]")
+    activated_at: float | None = Field(
+        description="When the condition last became active, epoch seconds [s]"
+    )
+    figure: float | None = Field(description="The rule's latest figure [unit]")
+    threshold: float | None = Field(description="The limit it is compared with [unit]")
+    unit: str = Field(description="Unit of figure and threshold (SI; empty if dimensionless)")
+    message: str = Field(description="What the rule says, ending with the monitoring-aid notice")
+    shelved_until: float | None = Field(description="Shelving expiry, epoch seconds [s]")
+    note: str = Field(description="The reason given with the latest operator action")
+
+
+class AlertsPublic(BaseModel):
+    """Alerts, most urgent first, with their count."""
+
+    data: list[AlertPublic]
+    count: int
+
+
+class AlertEventPublic(BaseModel):
+    """One state transition of one alert (also the data of SSE and webhook events)."""
+
+    train: str
+    sequence: int = Field(description="Position in the train's alert event log, from 1")
+    alert_id: str
+    rule: str
+    subject: str
+    priority: PriorityName
+    time: float = Field(description="When it happened, epoch seconds [s]")
+    time_utc: str
+    from_state: AlertStateName
+    to_state: AlertStateName
+    who: str = Field(description="'stagewatch' for automatic transitions, else the API key name")
+    why: str = Field(description="The timing that fired, or the operator's reason")
+    figure: float | None = Field(description="The rule's figure at the transition [unit]")
+    threshold: float | None = Field(description="The limit [unit]")
+    unit: str
+    message: str = Field(description="What happened, ending with the monitoring-aid notice")
+
+
+class AlertEventsPublic(BaseModel):
+    """Alert events in log order, with their count."""
+
+    data: list[AlertEventPublic]
+    count: int
+
+
+Reason = Annotated[
+    str,
+    Field(min_length=1, max_length=2000, description="Why, in the operator's words (logged)"),
+]
+
+
+class AlertActionIn(BaseModel):
+    """An operator's action on an alert, with the reason."""
+
+    model_config = _STRICT
+
+    reason: Reason
+
+
+class ShelveIn(BaseModel):
+    """Shelve an alert until a time, with the reason."""
+
+    model_config = _STRICT
+
+    until: Time
+    reason: Reason
+
+
+class AlertActionResult(BaseModel):
+    """What an operator's action did: the transition and the alert after it."""
+
+    event: AlertEventPublic
+    alert: AlertPublic
 
 
 class Problem(BaseModel):

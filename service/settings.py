@@ -11,10 +11,11 @@ its keys are the field names, at the top level::
     data_dir = "/var/lib/stagewatch"
     retention_readings = 2_592_000.0   # 30 days [s]
     cors_origins = ["https://dashboard.example.com"]
+    webhooks = ["https://alerts.example.com/stagewatch"]
 
 A key the service does not know is an error (a typo would otherwise be ignored).
-In the environment, ``STAGEWATCH_CORS_ORIGINS`` takes a JSON list or a
-comma-separated list.
+In the environment, ``STAGEWATCH_CORS_ORIGINS`` and ``STAGEWATCH_WEBHOOKS`` take a
+JSON list or a comma-separated list.
 
 Times are in seconds. ``future_tolerance`` is wall-clock time; ``checkpoint_every``
 and the retention periods are plant time (the readings' time stamps).
@@ -102,6 +103,9 @@ class Settings(BaseSettings):
         (``stagewatch keys create``) for anything that lasts.
     cors_origins : list of str
         Origins allowed to call the API from a browser; empty allows none.
+    webhooks : list of str
+        ``http://`` or ``https://`` URLs to which every alert event is posted as
+        JSON (see :mod:`service.webhooks`); empty posts nowhere.
     """
 
     model_config = SettingsConfigDict(
@@ -141,8 +145,11 @@ class Settings(BaseSettings):
     cors_origins: Annotated[list[str], NoDecode] = Field(
         default_factory=list, description="Origins allowed to call the API from a browser."
     )
+    webhooks: Annotated[list[str], NoDecode] = Field(
+        default_factory=list, description="URLs to post every alert event to, as JSON."
+    )
 
-    @field_validator("cors_origins", mode="before")
+    @field_validator("cors_origins", "webhooks", mode="before")
     @classmethod
     def _split_origins(cls, value: Any) -> Any:
         """Accept a JSON list or a comma-separated string (as the environment gives)."""
@@ -152,6 +159,15 @@ class Settings(BaseSettings):
         if text.startswith("["):
             return json.loads(text)
         return [part.strip() for part in text.split(",") if part.strip()]
+
+    @field_validator("webhooks")
+    @classmethod
+    def _web_urls(cls, value: list[str]) -> list[str]:
+        """Refuse a webhook that is not an http:// or https:// URL."""
+        for url in value:
+            if not url.lower().startswith(("http://", "https://")):
+                raise ValueError(f"webhook {url!r} must be an http:// or https:// URL")
+        return value
 
     @field_validator("bootstrap_key")
     @classmethod

@@ -17,6 +17,10 @@ What is kept:
 - ``gated_readings``: readings the filter rejected, or took as a step, with reasons.
 - ``checkpoints``: session state with the last journal id it includes; the newest
   three per train are kept.
+- ``alert_events``: every transition of every alert of a train (the engine's
+  sequence number, the states, who and why, the figure and the message), the
+  durable log of the alert engine; the engine's current state travels in the
+  checkpoints. An event is stored once: its (train, sequence) is unique.
 - ``api_keys``: hashes of API keys with their role (the key itself is never stored).
 
 Times of data (readings, estimates, gated readings) are floats, seconds since the
@@ -78,6 +82,7 @@ from sqlalchemy.exc import TimeoutError as PoolTimeoutError
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 from sqlalchemy.sql.elements import ColumnElement
 
+from estimator.alarm_state import AlertEvent
 from estimator.config import TrainConfig
 
 __all__ = [
@@ -119,6 +124,23 @@ _GATED_FIELDS = (
     "decision",
 )
 _DECISIONS = ("gated", "step")
+# Columns of alert_events in the order of AlertEvent's fields ("seq" is "sequence").
+_ALERT_COLUMNS = (
+    "seq",
+    "alert_id",
+    "rule",
+    "subject",
+    "priority",
+    "time",
+    "from_state",
+    "to_state",
+    "who",
+    "why",
+    "figure",
+    "threshold",
+    "unit",
+    "message",
+)
 
 # PostgreSQL journal statements: one array per column instead of a placeholder per
 # value, so that a batch is a short statement (psycopg re-parses long ones each time).
@@ -250,6 +272,30 @@ class _Checkpoint(_Base):
     journal_seq: Mapped[int] = mapped_column(BigInteger)
     created_at: Mapped[float] = mapped_column(Double)
     data: Mapped[bytes] = mapped_column(LargeBinary)
+
+
+class _AlertEvent(_Base):
+    __tablename__ = "alert_events"
+    __table_args__ = (
+        Index("ix_alert_events_train_time", "train_id", "time"),
+        Index("ix_alert_events_train_alert", "train_id", "alert_id", "seq"),
+    )
+
+    train_id: Mapped[int] = mapped_column(ForeignKey("trains.id"), primary_key=True)
+    seq: Mapped[int] = mapped_column(BigInteger, primary_key=True, autoincrement=False)
+    alert_id: Mapped[str] = mapped_column(String(400))
+    rule: Mapped[str] = mapped_column(String(64))
+    subject: Mapped[str] = mapped_column(String(256))
+    priority: Mapped[str] = mapped_column(String(16))
+    time: Mapped[float] = mapped_column(Double)
+    from_state: Mapped[str] = mapped_column(String(32))
+    to_state: Mapped[str] = mapped_column(String(32))
+    who: Mapped[str] = mapped_column(String(128))
+    why: Mapped[str] = mapped_column(Text)
+    figure: Mapped[float | None] = mapped_column(Double)
+    threshold: Mapped[float | None] = mapped_column(Double)
+    unit: Mapped[str] = mapped_column(String(64))
+    message: Mapped[str] = mapped_column(Text)
 
 
 class _ApiKey(_Base):
@@ -1117,10 +1163,91 @@ class Store:
             for r in rows
         ]
 
+    # ------------------------------------------------------------------ alert events
+
+    @_guarded
+    def append_alert_events(self, train_id: int, events: Sequence[AlertEvent]) -> int:
+        """Store alert events; an event already stored (same train and sequence) stays.
+
+        Parameters
+        ----------
+        train_id : int
+            The train's id.
+        events : sequence of AlertEvent
+            Transitions as the alert engine logged them; ``sequence`` numbers them
+            within the train. A journal replayed after a crash logs the same
+            events again: they are not stored twice, and the stored ones (those
+            that were announced) are kept.
+
+        Returns
+        -------
+        int
+            Events stored now.
+        """
+        with self._write() as conn:
+            return self._insert_alert_events(conn, train_id, events)
+
+    def _insert_alert_events(
+        self, conn: Connection, train_id: int, events: Sequence[AlertEvent]
+    ) -> int:
+        rows: dict[int, dict[str, Any]] = {}
+        for item in events:
+            rows.setdefault(int(item.sequence), _alert_event_row(train_id, item))
+        if not rows:
+            return 0
+        statement = (
+            self._insert(_AlertEvent)
+            .on_conflict_do_nothing(index_elements=["train_id", "seq"])
+            .returning(_AlertEvent.seq)
+        )
+        return len(conn.execute(statement, list(rows.values())).all())
+
+    @_guarded
+    def read_alert_events(
+        self,
+        train_id: int,
+        start: float | None = None,
+        end: float | None = None,
+        alert_id: str | None = None,
+    ) -> list[AlertEvent]:
+        """Return alert events with start <= time < end, in sequence order.
+
+        Parameters
+        ----------
+        train_id : int
+            The train's id.
+        start, end : float or None
+            Range of event times [s since the epoch]; None leaves that side open.
+        alert_id : str or None
+            Only this alert's events (``"<rule>:<subject>"``); None for every alert.
+        """
+        where = [_AlertEvent.train_id == train_id, *_time_range(_AlertEvent.time, start, end)]
+        if alert_id is not None:
+            where.append(_AlertEvent.alert_id == alert_id)
+        query = select(*(getattr(_AlertEvent, name) for name in _ALERT_COLUMNS)).where(*where)
+        with self._read() as conn:
+            rows = conn.execute(query.order_by(_AlertEvent.seq)).all()
+        return [AlertEvent(*row) for row in rows]
+
+    @_guarded
+    def last_alert_sequence(self, train_id: int) -> int:
+        """Return the highest stored alert event sequence of a train (0 when none)."""
+        with self._read() as conn:
+            seq = conn.execute(
+                select(func.max(_AlertEvent.seq)).where(_AlertEvent.train_id == train_id)
+            ).scalar_one_or_none()
+        return 0 if seq is None else int(seq)
+
     # ------------------------------------------------------------------ checkpoints
 
     @_guarded
-    def save_checkpoint(self, train_id: int, journal_seq: int, data: bytes) -> None:
+    def save_checkpoint(
+        self,
+        train_id: int,
+        journal_seq: int,
+        data: bytes,
+        alert_events: Sequence[AlertEvent] = (),
+    ) -> None:
         """Store a session checkpoint and drop all but the newest three of the train.
 
         Parameters
@@ -1131,8 +1258,13 @@ class Store:
             The last journal id the checkpoint includes.
         data : bytes
             ``TrainSession.checkpoint()``.
+        alert_events : sequence of AlertEvent, optional
+            Alert events to store in the same transaction (as
+            :meth:`append_alert_events`): an operator's action and the state that
+            holds it become durable together, or not at all.
         """
         with self._write() as conn:
+            self._insert_alert_events(conn, train_id, alert_events)
             conn.execute(
                 self._insert(_Checkpoint).values(
                     train_id=train_id,
@@ -1295,6 +1427,17 @@ def _train_record(row: Any) -> TrainRecord:
     return TrainRecord(
         train_id, name, title, version, config_json, source_text, _utc_now(created), _utc(retired)
     )
+
+
+def _alert_event_row(train_id: int, item: AlertEvent) -> dict[str, Any]:
+    """Return an alert event as a row of ``alert_events`` (non-finite figures as NULL)."""
+    data = item.to_dict()
+    if not math.isfinite(float(data["time"])):
+        raise ValueError(f"alert event {item.sequence}: time must be finite, got {item.time!r}")
+    row = {name: data[name] for name in _ALERT_COLUMNS if name != "seq"}
+    row["seq"] = int(data["sequence"])
+    row["train_id"] = train_id
+    return row
 
 
 def _api_key_select() -> Any:

@@ -23,6 +23,8 @@ DEMO = Path("replay_data/wrenfield/train.toml")
 ADMIN = "sw_admin_key_for_tests_0123456789abcdef"
 NAME = "wrenfield-line2"
 URL = f"/api/v1/trains/{NAME}"
+ALERT_ID = f"activity_low:{NAME}"
+ALERT = f"{URL}/alerts/{ALERT_ID}"
 
 
 @pytest.fixture
@@ -169,9 +171,16 @@ def test_auth_on_every_route(client: TestClient, database_url: str, role: str):
         ("GET", f"{URL}/gated"): "read",
         ("GET", f"{URL}/observability"): "read",
         ("GET", f"{URL}/stream"): "read",
+        ("GET", f"{URL}/alerts"): "read",
+        ("GET", f"{URL}/alerts/events"): "read",
+        ("POST", f"{ALERT}/acknowledge"): "ingest",
+        ("POST", f"{ALERT}/shelve"): "ingest",
+        ("POST", f"{ALERT}/unshelve"): "ingest",
+        ("POST", f"{ALERT}/remove-from-service"): "admin",
+        ("POST", f"{ALERT}/return-to-service"): "admin",
     }
     documented = {
-        (method, route.path.replace("{name}", NAME))
+        (method, route.path.replace("{name}", NAME).replace("{alert_id:path}", ALERT_ID))
         for route in client.app.routes  # type: ignore[attr-defined]
         if getattr(route, "path", "").startswith("/api/")
         for method in route.methods  # type: ignore[attr-defined]
@@ -240,3 +249,12 @@ def test_service_estimates_equal_the_replay_of_the_same_readings(
     np.testing.assert_allclose(
         [row["activity"]["value"] for row in served], replayed["activity"].to_numpy(), rtol=1e-9
     )
+
+
+def test_refused_readings_are_echoed_in_the_posted_unit(client: TestClient):
+    r = client.post(
+        f"{URL}/readings",
+        json={"readings": [{"tag": "FI-200", "time": time.time(), "value": -3.5}]},
+    )
+    refused = r.json()["refused"]
+    assert refused[0]["value"] == -3.5  # m^3/h as posted, not m^3/s
