@@ -240,6 +240,7 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
         """Return estimates over a time range, optionally one per interval, as JSON or CSV."""
         hub = _hub(request)
         runtime = hub.get(name)
+        hub.settle(name)
         rows = hub.store.read_estimates(runtime.train_id, start, end, every)
         if format == "csv":
             return Response(_estimates_csv(runtime.config, rows), media_type="text/csv")
@@ -388,6 +389,7 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
                     sent = float(last_event_id)
                 except ValueError:
                     raise HTTPException(422, "Last-Event-ID must be an estimate time") from None
+                await asyncio.to_thread(hub.settle, name)
                 missed = await asyncio.to_thread(
                     hub.store.read_estimates, runtime.train_id, sent, None, None
                 )

@@ -79,6 +79,9 @@ class Runtime:
     journal_seq: int = 0
     checkpoint_time: float = -math.inf
     latest: dict[str, Any] | None = None
+    # Estimate rows not yet written: a reading with dead time revises the last few
+    # minutes, so rows are stored once they are older than that (see Hub._settle).
+    unsettled: dict[float, dict[str, Any]] = field(default_factory=dict)
     subscribers: set[tuple[asyncio.AbstractEventLoop, asyncio.Queue[LiveItem]]] = field(
         default_factory=set
     )
@@ -236,8 +239,8 @@ class Hub:
             runtime.journal_seq = int(ids[-1])
         # A replay that logged fewer events than the crashed run must not reuse numbers.
         _continue_sequence(session, self.store.last_alert_sequence(record.id))
-        latest = self.store.latest_estimate(record.id)
-        runtime.latest = latest
+        self._settle(runtime)  # what the journal replay re-derived
+        runtime.latest = self.store.latest_estimate(record.id)
         runtime.checkpoint_time = session.filter.t
         _refresh_alerts(runtime)
         self.trains[record.name] = runtime
@@ -366,8 +369,11 @@ class Hub:
         """Store what an ingest produced; tell subscribers and webhooks when ``live``."""
         rows = estimate_rows(runtime.config, out.estimates)
         if rows:
-            self.store.write_estimates(runtime.train_id, rows)
-            runtime.latest = rows[-1]
+            for row in rows:
+                runtime.unsettled[row["t"]] = row
+            self._settle(runtime, runtime.session.filter.t - _settle_lag(runtime))
+            if runtime.latest is None or rows[-1]["t"] >= runtime.latest["t"]:
+                runtime.latest = rows[-1]
             if live:
                 self._publish(runtime, "estimate", rows)
         gated = gated_rows(out.gated, "gated") + gated_rows(out.steps, "step")
@@ -381,10 +387,26 @@ class Hub:
             _refresh_alerts(runtime)
         self.metrics.estimates.inc(len(rows))
 
+    def _settle(self, runtime: Runtime, before: float = math.inf) -> None:
+        """Write the held estimate rows older than ``before`` (all by default)."""
+        ready = [t for t in runtime.unsettled if t < before]
+        if ready:
+            ready.sort()
+            self.store.write_estimates(runtime.train_id, [runtime.unsettled[t] for t in ready])
+            for t in ready:
+                del runtime.unsettled[t]
+
+    def settle(self, name: str) -> None:
+        """Write every held estimate row of a train (before a read of its history)."""
+        runtime = self.get(name)
+        with runtime.lock:
+            self._settle(runtime)
+
     def _checkpoint(
         self, runtime: Runtime, *, force: bool = False, alert_events: Sequence[AlertEvent] = ()
     ) -> None:
         """Save the session; ``force`` saves one whose filter has not started yet."""
+        self._settle(runtime)  # rows before the checkpoint are never replayed
         initialized = runtime.session.filter.initialized
         if not (initialized or force):
             return
@@ -537,6 +559,16 @@ class Hub:
         for loop, queue in list(runtime.subscribers):
             for item in items:
                 loop.call_soon_threadsafe(_offer, queue, (kind, item))
+
+
+def _settle_lag(runtime: Runtime) -> float:
+    """How far back a reading arriving now can still revise estimates [s].
+
+    The largest dead time plus the snapshot spacing the filter rewinds to; late
+    lab results reach further and are written when they come.
+    """
+    dead = max((d.dead_time for d in runtime.session.filter.measurements), default=0.0)
+    return dead + runtime.session.filter.snapshot_interval
 
 
 def _offer(queue: asyncio.Queue[LiveItem], item: LiveItem) -> None:
