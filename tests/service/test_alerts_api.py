@@ -33,7 +33,7 @@ from service.settings import Settings
 from service.store import Store, StoreUnavailable
 from service.webhooks import WebhookSender
 from tests.service.test_app import ADMIN, DEMO, NAME, URL
-from tests.service.test_live import AUTH, Server
+from tests.service.test_live import AUTH, Server, sse_events
 
 HOUR = 3600.0
 OPERATOR = "sw_operator_key_for_tests_0123456789abcdef"
@@ -527,19 +527,12 @@ def test_live_stream_sends_alert_events(server: Server):
 
     def listen() -> None:
         with httpx.stream("GET", f"{server.base}{URL}/stream", headers=AUTH, timeout=60.0) as r:
-            event: dict[str, str] = {}
-            for line in r.iter_lines():
-                if line == "":
-                    if "data" in event:
-                        kinds.add(event.get("event", ""))
-                        if event.get("event") == "alert":
-                            alerts.append(event)
-                            done.set()
-                            return
-                    event = {}
-                elif ":" in line and not line.startswith(":"):
-                    key, _, value = line.partition(":")
-                    event[key] = value.strip()
+            for event in sse_events(r):
+                kinds.add(event.get("event", ""))
+                if event.get("event") == "alert":
+                    alerts.append(event)
+                    done.set()
+                    return
 
     listener = threading.Thread(target=listen, daemon=True)
     listener.start()

@@ -11,8 +11,6 @@ import numpy as np
 import pytest
 from typer.testing import CliRunner
 
-from estimator.config import TrainConfig, load_train_config
-from estimator.model import TrainModel
 from estimator.scenario import load_scenario
 from estimator.simulate import Scenario, Simulation, simulate
 from service.archive import (
@@ -27,20 +25,7 @@ from service.archive import (
     write_truth,
 )
 from service.cli import app
-
-DEMO = Path(__file__).resolve().parents[2] / "replay_data" / "wrenfield"
-DAY = 86400.0
-HOUR = 3600.0
-
-
-@cache
-def train() -> TrainConfig:
-    return load_train_config(DEMO / "train.toml")
-
-
-@cache
-def model() -> TrainModel:
-    return TrainModel.from_config(train())
+from tests.estimator.test_simulate import DAY, DEMO, HOUR, model, train
 
 
 @cache

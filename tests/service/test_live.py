@@ -87,6 +87,19 @@ def server(database_url: str, tmp_path: Path) -> Iterator[Server]:
         srv.stop()
 
 
+def sse_events(response: httpx.Response) -> Iterator[dict[str, str]]:
+    """Server-sent events of a streaming response, as field -> value dicts."""
+    event: dict[str, str] = {}
+    for line in response.iter_lines():
+        if line == "":
+            if "data" in event:
+                yield event
+            event = {}
+        elif ":" in line and not line.startswith(":"):
+            key, _, value = line.partition(":")
+            event[key] = value.strip()
+
+
 def post_all(base: str, readings: list[dict[str, object]], size: int = 100) -> None:
     with httpx.Client(base_url=base, headers=AUTH, timeout=30.0) as client:
         for k in range(0, len(readings), size):
@@ -126,18 +139,11 @@ def test_live_stream_sends_new_estimates_and_resumes_from_last_event_id(server: 
 
     def listen() -> None:
         with httpx.stream("GET", f"{server.base}{URL}/stream", headers=AUTH, timeout=30.0) as r:
-            event: dict[str, str] = {}
-            for line in r.iter_lines():
-                if line == "":
-                    if "data" in event:
-                        events.append(event)
-                        if len(events) >= 3:
-                            done.set()
-                            return
-                    event = {}
-                elif ":" in line and not line.startswith(":"):
-                    key, _, value = line.partition(":")
-                    event[key] = value.strip()
+            for event in sse_events(r):
+                events.append(event)
+                if len(events) >= 3:
+                    done.set()
+                    return
 
     listener = threading.Thread(target=listen, daemon=True)
     listener.start()
