@@ -58,6 +58,9 @@ def run_live_demo(
     """
     shutil.rmtree(data_dir, ignore_errors=True)
     data_dir.mkdir(parents=True)
+    if echo:
+        print("stagewatch: loading the filter core (compiled on the first run only) ...")
+    _warm_up()
     key = new_key()
     settings = Settings(
         data_dir=data_dir, port=port, bootstrap_key=SecretStr(key), log_json=False
@@ -72,7 +75,7 @@ def run_live_demo(
     posted = 0
     try:
         _wait_ready(base)
-        with httpx.Client(base_url=base, headers=headers, timeout=30.0) as client:
+        with httpx.Client(base_url=base, headers=headers, timeout=120.0) as client:
             toml = (DEMO_DIR / "train.toml").read_text()
             r = client.post("/api/v1/trains", json={"toml": toml})
             r.raise_for_status()
@@ -91,6 +94,23 @@ def run_live_demo(
         server.should_exit = True
         thread.join(timeout=30)
     return {"url": base, "key": key, "posted": posted}
+
+
+def _warm_up() -> None:
+    """Compile (or load from numba's cache) the kernels before the server starts.
+
+    Otherwise the first posted batch would wait for the compiler inside a request.
+    """
+    from estimator.config import load_train_config
+    from estimator.session import TrainSession
+
+    session = TrainSession(load_train_config(DEMO_DIR / "train.toml"))
+    config = session.config
+    tags = [config.feed.flow.tag, "AI-203G", "AI-200G"]
+    temps = [v.temperature.tag for v in config.vessels if not isinstance(v.temperature, float)]
+    session.ingest(tags + temps, [0.0, 600.0, 600.0] + [0.0] * len(temps),
+                   [12.0, 1300.0, 2400.0] + [58.0] * len(temps))  # fmt: skip
+    session.ingest(tags, [900.0, 900.0, 900.0], [12.0, 1300.0, 2400.0])
 
 
 def _wait_ready(base: str, timeout: float = 120.0) -> None:
