@@ -360,7 +360,7 @@ class AlertEngine:
         self._settle = 2.0 * sum(v.volume for v in config.vessels) / q if q > 0.0 else 0.0
         self._lab = {m.tag for m in config.measurements if m.kind == "lab"}
         self._tags = list(config.tags())
-        self._units = _tag_units(config)
+        self._units = config.tag_units()
         self._history = {tag: _TagHistory() for tag in self._tags}
         self._nis: dict[tuple[float, int], tuple[float, float]] = {}
         self._activity = np.empty((0, 3))  # rows of (time, activity, activity_std)
@@ -1205,24 +1205,3 @@ def _opt(value: Any) -> float | None:
 def _float(value: Any) -> float | None:
     number = float(value)
     return number if math.isfinite(number) else None
-
-
-def _tag_units(config: TrainConfig) -> dict[str, tuple[str, float, float]]:
-    """Each tag's (unit, scale, offset): ``SI = scale * value + offset``."""
-    out = {
-        config.feed.flow.tag: (
-            config.feed.flow.unit,
-            config.feed.flow.scale,
-            config.feed.flow.offset,
-        )
-    }
-    for vessel in config.vessels:
-        if isinstance(vessel.temperature, TemperatureTag):
-            tt = vessel.temperature
-            out[tt.tag] = (tt.unit, tt.scale, tt.offset)
-    for source in config.feed.composition.values():
-        if not isinstance(source, float):
-            out[source.tag] = (source.unit, source.scale, source.offset)
-    for m in config.measurements:
-        out[m.tag] = (m.unit, m.scale, m.offset)
-    return out

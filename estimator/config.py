@@ -1136,6 +1136,17 @@ class TrainConfig(BaseModel):
             roles[measurement.tag] = f"measurement:{measurement.tag}"
         return roles
 
+    def tag_units(self) -> dict[str, tuple[str, float, float]]:
+        """Map every tag to the unit its readings come in: ``(unit, scale, offset)``.
+
+        ``SI = scale * value + offset``; the order is that of :meth:`tags`.
+        """
+        sources: list[TagInput | MeasurementConfig] = [self.feed.flow]
+        sources += [v.temperature for v in self.vessels if isinstance(v.temperature, TagInput)]
+        sources += [s for s in self.feed.composition.values() if isinstance(s, TagInput)]
+        sources += list(self.measurements)
+        return {s.tag: (s.unit, s.scale, s.offset) for s in sources}
+
 
 def _in_species_order(
     composition: Mapping[str, Any], species: Sequence[str], zero: Any

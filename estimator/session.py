@@ -21,7 +21,6 @@ import json
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Protocol
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -161,9 +160,9 @@ class TrainSession:
         scale = np.ones(len(names))
         offset = np.zeros(len(names))
         units = ["SI"] * len(names)
-        for tag, source in _tag_sources(config):
+        for tag, (unit, tag_scale, tag_offset) in config.tag_units().items():
             code = self.filter.tag_code[tag]
-            scale[code], offset[code], units[code] = source.scale, source.offset, source.unit
+            scale[code], offset[code], units[code] = tag_scale, tag_offset, unit
         self._scale = scale
         self._offset = offset
         self.units: tuple[str, ...] = tuple(units)
@@ -408,25 +407,3 @@ class RevisionBuffer:
         return out if len(out) else None
 
 
-def _tag_sources(config: TrainConfig) -> list[tuple[str, _Unit]]:
-    """Each tag with the object carrying its unit, scale and offset."""
-    out: list[tuple[str, _Unit]] = [(config.feed.flow.tag, config.feed.flow)]
-    for vessel in config.vessels:
-        if not isinstance(vessel.temperature, float):
-            out.append((vessel.temperature.tag, vessel.temperature))
-    for source in config.feed.composition.values():
-        if not isinstance(source, float):
-            out.append((source.tag, source))
-    out += [(m.tag, m) for m in config.measurements]
-    return out
-
-
-class _Unit(Protocol):
-    """What :func:`_tag_sources` reads from a tag's config."""
-
-    @property
-    def unit(self) -> str: ...
-    @property
-    def scale(self) -> float: ...
-    @property
-    def offset(self) -> float: ...

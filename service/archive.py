@@ -29,7 +29,7 @@ from typing import Any, Literal
 import numpy as np
 from numpy.typing import NDArray
 
-from estimator.config import TagInput, TrainConfig
+from estimator.config import TrainConfig
 from estimator.model import FloatArray, IntArray, TrainModel
 from estimator.simulate import Simulation
 
@@ -129,23 +129,10 @@ class ArchiveColumns:
         )
 
 
-def _tag_units(config: TrainConfig) -> dict[str, tuple[float, float]]:
-    """Per tag, ``(scale, offset)`` of ``SI = scale * value + offset``."""
-    units: dict[str, tuple[float, float]] = {}
-    sources: list[TagInput] = [config.feed.flow]
-    sources += [v.temperature for v in config.vessels if isinstance(v.temperature, TagInput)]
-    sources += [s for s in config.feed.composition.values() if isinstance(s, TagInput)]
-    for source in sources:
-        units[source.tag] = (source.scale, source.offset)
-    for meas in config.measurements:
-        units[meas.tag] = (meas.scale, meas.offset)
-    return units
-
-
 def _convert(columns: ArchiveColumns, config: TrainConfig, to_si_units: bool) -> ArchiveColumns:
-    units = _tag_units(config)
-    scale = np.array([units.get(n, (1.0, 0.0))[0] for n in columns.names] or [1.0])
-    offset = np.array([units.get(n, (1.0, 0.0))[1] for n in columns.names] or [0.0])
+    units = config.tag_units()
+    scale = np.array([units.get(n, ("", 1.0, 0.0))[1] for n in columns.names] or [1.0])
+    offset = np.array([units.get(n, ("", 1.0, 0.0))[2] for n in columns.names] or [0.0])
     s, o = scale[columns.codes], offset[columns.codes]
     values = s * columns.values + o if to_si_units else (columns.values - o) / s
     return replace(columns, values=values)

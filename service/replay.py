@@ -66,7 +66,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from estimator.alarm_state import AlertEvent, AlertState
-from estimator.config import MeasurementConfig, TagInput, TrainConfig
+from estimator.config import TagInput, TrainConfig
 from estimator.filter import Refusal
 from estimator.model import FloatArray, IntArray
 from estimator.session import (
@@ -607,27 +607,23 @@ def _tag_info(session: TrainSession) -> _TagInfo:
     config = session.config
     n = len(session.tags)
     scale, offset, dead = np.ones(n), np.zeros(n), np.zeros(n)
-    sources: list[TagInput | MeasurementConfig] = [config.feed.flow]
-    sources += [v.temperature for v in config.vessels if isinstance(v.temperature, TagInput)]
     measured: list[tuple[str, str, str, int, str]] = []
     for species, feed_source in config.feed.composition.items():
         if isinstance(feed_source, TagInput):
-            sources.append(feed_source)
             if config.feed.model == "state":
                 code = int(session.codes([feed_source.tag])[0])
                 measured.append((feed_source.tag, "feed", species, code, "feed analyzer"))
     lab_state: dict[int, int] = {}
     for meas in config.measurements:
-        sources.append(meas)
         code = int(session.codes([meas.tag])[0])
         measured.append((meas.tag, meas.location, meas.species, code, meas.kind))
         if meas.kind == "lab":
             vessel = config.vessel_index(meas.location)
             lab_state[code] = vessel * len(config.species) + config.species_index(meas.species)
-    for source in sources:
-        code = int(session.codes([source.tag])[0])
-        scale[code], offset[code] = source.scale, source.offset
-        kind = session.filter.classify(source.tag)
+    for tag, (_, tag_scale, tag_offset) in config.tag_units().items():
+        code = int(session.codes([tag])[0])
+        scale[code], offset[code] = tag_scale, tag_offset
+        kind = session.filter.classify(tag)
         dead[code] = kind[2] if kind is not None else 0.0
     is_meas = np.zeros(n, dtype=bool)
     is_meas[[m[3] for m in measured]] = True
