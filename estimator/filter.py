@@ -14,8 +14,11 @@ together) with
   evaluated in O(n^2) for a scalar H;
 - non-negative concentrations, activity and feed states by estimate projection:
   the update is projected on the active bounds in the P^-1 metric;
-- a symmetric positive-definite covariance (symmetrised; a failed Cholesky
-  factorisation adds the smallest diagonal load that restores it).
+- a symmetric positive-definite covariance: symmetrised after every update, and
+  after every propagation also checked by a Cholesky factorisation (a failure adds
+  the smallest diagonal load that restores it). Both are done per event, never at
+  the end of a batch, so the state after each event is the same bits however the
+  readings were batched, rewound or continued.
 
 Matrices: x (n,), P (n, n), u (1 + N + S,), H a row of ones at the measured state
 and its bias, R the reading variance [unit^2], S = H P H^T + R.
@@ -38,7 +41,7 @@ nonlinear algorithms", IET Control Theory & Applications 4(8):1303-1318, 2010
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 
 import numba
@@ -98,14 +101,21 @@ def ensure_spd(cov: FloatArray) -> int:
 
 
 @numba.njit(cache=True, error_model="numpy")
-def ensure_spd_into(cov: FloatArray, scratch: FloatArray) -> int:
-    """:func:`ensure_spd` with an (n, n) scratch array."""
+def symmetrize(cov: FloatArray) -> None:
+    """Make ``cov`` exactly symmetric in place: the mean of each off-diagonal pair."""
     n = cov.shape[0]
     for i in range(n):
         for j in range(i + 1, n):
             m = 0.5 * (cov[i, j] + cov[j, i])
             cov[i, j] = m
             cov[j, i] = m
+
+
+@numba.njit(cache=True, error_model="numpy")
+def ensure_spd_into(cov: FloatArray, scratch: FloatArray) -> int:
+    """:func:`ensure_spd` with an (n, n) scratch array."""
+    n = cov.shape[0]
+    symmetrize(cov)
     loads = 0
     scale = 0.0
     for i in range(n):
@@ -432,6 +442,7 @@ def run_events(
         te = ev_t[k]
         if te > t:
             propagate_into(x, cov, u, te - t, ip, fp, noise_matrix, ws)
+            ensure_spd_into(cov, chol)
             t = te
         if ev_kind[k] == KIND_INPUT:
             u[ev_idx[k]] = ev_val[k]
@@ -482,13 +493,13 @@ def run_events(
             else:
                 side = 1 if grp_innov[0] > 0.0 else -1
                 streak[group] = run + side if run * side > 0 else side
+            symmetrize(cov)
             for a in range(m):
                 ev_status[k + a] = status
                 ev_nis[k + a] = nis
                 ev_innov[k + a] = grp_innov[a]
             k = k2
         if k >= stop or ev_t[k] != te:
-            ensure_spd_into(cov, chol)
             out_t[n_out] = te
             for i in range(n):
                 out_x[n_out, i] = x[i]
@@ -586,6 +597,12 @@ class FilterRun:
         )
 
 
+Backfill = Callable[[float, float], tuple[ArrayLike, ArrayLike, ArrayLike]]
+"""``backfill(start, stop)``: every reading the filter has already taken whose
+reading time lies in [start, stop] [s since the epoch], as (tag codes, reading
+times [s], values [SI]); the service reads them back from its journal."""
+
+
 class CascadeFilter:
     """EKF for one train with a bounded history for late and out-of-order readings.
 
@@ -599,6 +616,31 @@ class CascadeFilter:
     seconds of readings have gathered, using nominal values for inputs still
     unread), at the earliest reading's time, from the design steady state at the
     first inputs, with covariance diag(initial_std^2).
+
+    Memory: the filter keeps snapshots over the whole history horizon, but the
+    event log only over ``memory`` seconds when it has a ``backfill`` to read older
+    readings back (the service's journal). A reading sampled before that window
+    (a lab result hours late) brings the older events back from the snapshot before
+    it, and the filter runs forward as it would have with the whole log in memory:
+    the numbers are the same. Snapshots older than the window are thinned to one
+    every ``far_snapshot_interval`` seconds.
+
+    Parameters
+    ----------
+    model : TrainModel
+        The train's model.
+    snapshot_interval : float
+        Spacing of the rewind snapshots inside the in-memory window [s].
+    start_wait : float
+        Longest wait for every input's first reading before starting [s].
+    memory : float, optional
+        Span of the in-memory event log [s]; at least the largest dead time plus
+        two snapshot intervals, at most (and without ``backfill``, always) the
+        history horizon.
+    backfill : Backfill, optional
+        Reads taken readings back, for late readings sampled before the window.
+    far_snapshot_interval : float
+        Spacing of the snapshots kept before the in-memory window [s].
     """
 
     def __init__(
@@ -607,6 +649,9 @@ class CascadeFilter:
         *,
         snapshot_interval: float = 60.0,
         start_wait: float = 900.0,
+        memory: float | None = None,
+        backfill: Backfill | None = None,
+        far_snapshot_interval: float = 600.0,
     ) -> None:
         self.model = model
         cfg = model.config
@@ -614,6 +659,7 @@ class CascadeFilter:
         self.horizon = cfg.estimator.horizon
         self.snapshot_interval = snapshot_interval
         self.start_wait = start_wait
+        self.far_snapshot_interval = far_snapshot_interval
 
         self.inputs: dict[str, int] = {cfg.feed.flow.tag: 0}
         for i, vessel in enumerate(cfg.vessels):
@@ -648,6 +694,12 @@ class CascadeFilter:
             defs.append(MeasurementDef(meas.tag, state, -1, meas.std**2, dead, len(defs)))
         self.measurements: tuple[MeasurementDef, ...] = tuple(defs)
         self.measurement_index = {d.tag: i for i, d in enumerate(defs)}
+        self._max_dead = max((d.dead_time for d in defs), default=0.0)
+        self.backfill = backfill
+        self.memory = self.horizon
+        if memory is not None and backfill is not None:
+            floor = self._max_dead + 2.0 * snapshot_interval
+            self.memory = min(max(float(memory), floor), self.horizon)
 
         # Per tag code: event kind and index, dead time, accepted range and its reason.
         limits = self._physical_limits()
@@ -677,6 +729,8 @@ class CascadeFilter:
         self._lower = np.array(sorted(bounded), dtype=np.int64)
 
         self.initialized = False
+        # Time of the first snapshot ever (the history's start); events at it follow it.
+        self._origin = -math.inf
         self._pending = np.empty((0, 4))
         # Event log, sorted by (time, kind, index, value); positions index it.
         self._ev_t = np.empty(0)
@@ -686,7 +740,8 @@ class CascadeFilter:
         self._ev_status = np.empty(0, dtype=np.int64)
         self._ev_nis = np.empty(0)
         self._ev_innov = np.empty(0)
-        # Snapshots: position in the log, time, state, covariance, inputs.
+        # Snapshots: position in the log (-1 before the in-memory window), time,
+        # state, covariance, inputs, gating streaks.
         self._snap_pos = np.empty(0, dtype=np.int64)
         self._snap_t = np.empty(0)
         self._snap_x = np.empty((0, lay.n))
@@ -768,6 +823,7 @@ class CascadeFilter:
         else:
             if len(events) == 0:
                 return FilterRun.empty(self.model, refused)
+            self._extend_back(float(events[:, 0].min()))
             first = self._merge(events)
             if first >= len(self._ev_t):
                 return FilterRun.empty(self.model, refused)
@@ -888,6 +944,7 @@ class CascadeFilter:
         self.cov = np.diag(self.model.initial_std**2)
         self.u = u0
         self.t = t0
+        self._origin = t0
         self._pending = np.empty((0, 4))
         self._set_log(pending)
         self._snap_pos = np.array([0], dtype=np.int64)
@@ -970,9 +1027,26 @@ class CascadeFilter:
             streak = self._streak.copy()
             t = self.t
             keep = len(self._snap_t)
-            snap_last = float(self._snap_t[-1])
+            # A snapshot closes its time (it follows every event at that time): new
+            # readings at the time of the last one retire it; the run writes it again.
+            while (
+                keep > 1
+                and start < len(self._ev_t)
+                and self._snap_t[keep - 1] >= self._ev_t[start]
+                and self._snap_pos[keep - 2] >= 0
+            ):
+                keep -= 1
+            snap_last = float(self._snap_t[keep - 1])
         else:
             s = max(int(np.searchsorted(self._snap_pos, position, side="right")) - 1, 0)
+            # Likewise a reading at a snapshot's very time reruns from the one before.
+            while (
+                s > 0
+                and position < len(self._ev_t)
+                and self._snap_t[s] >= self._ev_t[position]
+                and self._snap_pos[s - 1] >= 0
+            ):
+                s -= 1
             start = int(self._snap_pos[s])
             if start < len(self._ev_t) and self._snap_t[s] < self.t:
                 rewound = float(self._snap_t[s])
@@ -1031,30 +1105,92 @@ class CascadeFilter:
             self.events(start, stop),
         )
 
-    def _trim(self) -> None:
-        """Forget snapshots and events older than the horizon (keeping one base snapshot)."""
-        limit = self.t - self.horizon
-        s = int(np.searchsorted(self._snap_t, limit, side="right")) - 1
-        if s <= 0 or s < len(self._snap_t) // 2:
+    def _extend_back(self, earliest: float) -> None:
+        """Read back the events a sample at ``earliest`` [s] needs, from before the window.
+
+        The log then starts at the last snapshot before ``earliest``, as it would
+        have had it been kept in memory; :meth:`_trim` shortens it again.
+        """
+        w = self._far_count()
+        if w == 0 or earliest > self._snap_t[w]:
             return
-        cut = int(self._snap_pos[s])
-        self._live_pos -= cut
-        self._snap_pos = self._snap_pos[s:] - cut
-        self._snap_t = self._snap_t[s:]
-        self._snap_x = self._snap_x[s:]
-        self._snap_cov = self._snap_cov[s:]
-        self._snap_u = self._snap_u[s:]
-        self._snap_streak = self._snap_streak[s:]
-        for name in (
-            "_ev_t",
-            "_ev_kind",
-            "_ev_idx",
-            "_ev_val",
-            "_ev_status",
-            "_ev_nis",
-            "_ev_innov",
+        assert self.backfill is not None  # far snapshots exist only with a backfill
+        s = max(int(np.searchsorted(self._snap_t, earliest, side="left")) - 1, 0)
+        lo, hi = float(self._snap_t[s]), float(self._snap_t[w])
+        codes, times, values = self.backfill(lo, hi + self._max_dead)
+        code = np.asarray(codes, dtype=np.int64)
+        t = np.asarray(times, dtype=np.float64)
+        v = np.asarray(values, dtype=np.float64)
+        known = (code >= 0) & (code < len(self.tag_names))
+        code, t, v = code[known], t[known], v[known]
+        sample = t - self._dead_of[code]
+        # A snapshot follows every event at its time; the history's first precedes them.
+        after = sample >= lo if lo == self._origin else sample > lo
+        sel = after & (sample <= hi)
+        old = _sorted_unique(
+            np.column_stack(
+                [sample[sel], self._kind_of[code[sel]], self._index_of[code[sel]], v[sel]]
+            ).astype(np.float64)
+        )
+        k = len(old)
+        for j in range(s, w):
+            tj = self._snap_t[j]
+            side = "left" if tj == self._origin else "right"
+            self._snap_pos[j] = int(np.searchsorted(old[:, 0], tj, side=side))
+        self._snap_pos[w:] += k
+        self._live_pos += k
+        self._ev_t = np.concatenate([old[:, 0], self._ev_t])
+        self._ev_kind = np.concatenate([old[:, 1].astype(np.int64), self._ev_kind])
+        self._ev_idx = np.concatenate([old[:, 2].astype(np.int64), self._ev_idx])
+        self._ev_val = np.concatenate([old[:, 3], self._ev_val])
+        self._ev_status = np.concatenate(
+            [np.full(k, STATUS_PENDING, dtype=np.int64), self._ev_status]
+        )
+        self._ev_nis = np.concatenate([np.zeros(k), self._ev_nis])
+        self._ev_innov = np.concatenate([np.zeros(k), self._ev_innov])
+
+    def _far_count(self) -> int:
+        """How many snapshots lie before the in-memory event log (position -1)."""
+        return int(np.searchsorted(self._snap_pos, 0, side="left"))
+
+    def _trim(self) -> None:
+        """Forget what no late reading can need any more.
+
+        Snapshots and events older than the horizon go (one base snapshot stays).
+        Events older than the in-memory window go too when the backfill can read
+        them back; the snapshots before the window are kept, thinned to one per
+        ``far_snapshot_interval``. Amortised: it trims once a quarter of the log or
+        half the snapshots can go.
+        """
+        snap_t = self._snap_t
+        base = max(int(np.searchsorted(snap_t, self.t - self.horizon, side="right")) - 1, 0)
+        window = int(np.searchsorted(snap_t, self.t - self.memory, side="right")) - 1
+        window = max(window, base)
+        cut = max(int(self._snap_pos[window]), 0)
+        if not (
+            (cut > 0 and cut >= len(self._ev_t) // 4) or (base > 0 and base >= len(snap_t) // 2)
         ):
-            setattr(self, name, getattr(self, name)[cut:])
+            return
+        keep = []
+        last = -math.inf
+        for j in range(base, len(snap_t)):
+            if j < window and j > base and snap_t[j] < last + self.far_snapshot_interval:
+                continue  # thinned: a far snapshot close after the one kept
+            keep.append(j)
+            if j < window:
+                last = float(snap_t[j])
+        sel = np.array(keep, dtype=np.int64)
+        pos = self._snap_pos[sel] - cut
+        pos[sel < window] = -1
+        self._snap_pos = pos
+        self._snap_t = self._snap_t[sel]
+        self._snap_x = self._snap_x[sel]
+        self._snap_cov = self._snap_cov[sel]
+        self._snap_u = self._snap_u[sel]
+        self._snap_streak = self._snap_streak[sel]
+        self._live_pos -= cut
+        for name in _LOG:
+            setattr(self, name, getattr(self, name)[cut:].copy())
 
     # ------------------------------------------------------------------ views
 
@@ -1098,7 +1234,7 @@ class CascadeFilter:
             raise ValueError("filter state belongs to a train with another state layout")
         for name in _STATE:
             value = np.array(arrays[name], copy=True)
-            if name == "t":
+            if name in ("t", "_origin"):
                 setattr(self, name, float(value))
             elif name == "_live_pos":
                 setattr(self, name, int(value))
@@ -1107,8 +1243,10 @@ class CascadeFilter:
         self.initialized = bool(arrays["initialized"])
 
 
+_LOG = ("_ev_t", "_ev_kind", "_ev_idx", "_ev_val", "_ev_status", "_ev_nis", "_ev_innov")
+
 _STATE = (
-    "t", "x", "cov", "u", "_pending",
+    "t", "x", "cov", "u", "_pending", "_origin",
     "_ev_t", "_ev_kind", "_ev_idx", "_ev_val", "_ev_status", "_ev_nis", "_ev_innov",
     "_snap_pos", "_snap_t", "_snap_x", "_snap_cov", "_snap_u", "_snap_streak",
     "_live_pos", "_streak",

@@ -19,7 +19,7 @@ import hashlib
 import io
 import json
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -91,7 +91,7 @@ class EstimateBatch:
 
 
 _FIELDS = tuple(EstimateBatch.__dataclass_fields__)
-_CHECKPOINT_FORMAT = 1
+_CHECKPOINT_FORMAT = 2
 
 
 @dataclass(frozen=True)
@@ -136,6 +136,12 @@ class SessionOutput:
     alerts: list[AlertEvent] = field(default_factory=list)
 
 
+Journal = Callable[[float, float], tuple[Sequence[str], ArrayLike, ArrayLike]]
+"""``journal(start, stop)``: every reading the session has already taken whose
+reading time lies in [start, stop] [s since the epoch], as (tags, times [s], values
+in each tag's declared unit). The service reads them from its readings journal."""
+
+
 class TrainSession:
     """Readings in any order -> estimates, for one train (no I/O).
 
@@ -147,15 +153,34 @@ class TrainSession:
         Spacing of the filter's rewind snapshots [s].
     alerts : bool
         Run the train's alert rules on every output (``SessionOutput.alerts``).
+    memory : float, optional
+        Span of the filter's in-memory event log [s] (see
+        :class:`~estimator.filter.CascadeFilter`); only with ``journal``. Without
+        one the whole history horizon stays in memory.
+    journal : Journal, optional
+        Where the filter reads taken readings back when a late one is sampled
+        before its in-memory window.
     """
 
     def __init__(
-        self, config: TrainConfig, *, snapshot_interval: float = 60.0, alerts: bool = True
+        self,
+        config: TrainConfig,
+        *,
+        snapshot_interval: float = 60.0,
+        alerts: bool = True,
+        memory: float | None = None,
+        journal: Journal | None = None,
     ) -> None:
         self.config = config
         self.alert_engine = AlertEngine(config) if alerts else None
         self.model = TrainModel.from_config(config)
-        self.filter = CascadeFilter(self.model, snapshot_interval=snapshot_interval)
+        self.journal = journal
+        self.filter = CascadeFilter(
+            self.model,
+            snapshot_interval=snapshot_interval,
+            memory=memory,
+            backfill=None if journal is None else self._backfill,
+        )
         names = self.filter.tag_names
         scale = np.ones(len(names))
         offset = np.zeros(len(names))
@@ -170,8 +195,9 @@ class TrainSession:
     def checkpoint(self) -> bytes:
         """Return the session's state as bytes, to store and later :meth:`restore`.
 
-        Holds the filter's event log and snapshots within the history horizon, so
-        a restored session applies late readings exactly as this one would.
+        Holds the filter's in-memory event log and its snapshots within the history
+        horizon, so a restored session (given the same journal) applies late
+        readings exactly as this one would.
         """
         buffer = io.BytesIO()
         arrays = self.filter.state_arrays()
@@ -185,9 +211,25 @@ class TrainSession:
         np.savez(buffer, **arrays)  # type: ignore[arg-type]  # stub types kwds as bool
         return buffer.getvalue()
 
+    def _backfill(self, start: float, stop: float) -> tuple[ArrayLike, ArrayLike, ArrayLike]:
+        """Read :attr:`journal` back for the filter: tag codes and SI values."""
+        assert self.journal is not None
+        tags, times, values = self.journal(start, stop)
+        codes = self.codes(tags)
+        return codes, times, self.to_si(codes, values)
+
     @classmethod
-    def restore(cls, config: TrainConfig, data: bytes) -> TrainSession:
+    def restore(
+        cls,
+        config: TrainConfig,
+        data: bytes,
+        *,
+        memory: float | None = None,
+        journal: Journal | None = None,
+    ) -> TrainSession:
         """Build a session of ``config`` resumed from :meth:`checkpoint` bytes.
+
+        ``memory`` and ``journal`` are as for the constructor (not saved).
 
         Raises
         ------
@@ -195,7 +237,7 @@ class TrainSession:
             When the bytes are not a checkpoint of this version or of this train's
             state layout.
         """
-        session = cls(config, snapshot_interval=60.0)
+        session = cls(config, snapshot_interval=60.0, memory=memory, journal=journal)
         try:
             with np.load(io.BytesIO(data), allow_pickle=False) as saved:
                 arrays = {name: saved[name] for name in saved.files}
@@ -405,5 +447,3 @@ class RevisionBuffer:
         rest = held.take(held.time >= before)
         self._held = [rest] if len(rest) else []
         return out if len(out) else None
-
-

@@ -88,6 +88,25 @@ class Runtime:
     alerts: list[Alert] = field(default_factory=list)
 
 
+class JournalReader:
+    """Reads a train's taken readings back from the journal for its filter.
+
+    Only journal ids up to the runtime's ``journal_seq`` (the last one applied):
+    the batch being applied is not yet part of the filter's past.
+    """
+
+    def __init__(self, store: Store, train_id: int, tags: Sequence[str]) -> None:
+        self.store = store
+        self.train_id = train_id
+        self.tags = tuple(tags)
+        self.runtime: Runtime | None = None
+
+    def __call__(self, start: float, stop: float) -> tuple[list[str], np.ndarray, np.ndarray]:
+        """Return readings with reading time in [start, stop] [s], in their declared units."""
+        upto = 0 if self.runtime is None else self.runtime.journal_seq
+        return self.store.readings_between(self.train_id, self.tags, start, stop, upto=upto)
+
+
 def estimate_rows(config: TrainConfig, batch: EstimateBatch) -> list[dict[str, Any]]:
     """Estimates as compact JSON-ready rows (the stored and streamed form).
 
@@ -207,6 +226,16 @@ class Hub:
         if self.webhooks is not None:
             self.webhooks.stop()
 
+    def _new_session(
+        self, config: TrainConfig, train_id: int, data: bytes | None = None
+    ) -> TrainSession:
+        """Make a session (from checkpoint ``data`` if given) that reads back from the journal."""
+        reader = JournalReader(self.store, train_id, config.tags())
+        memory = self.settings.event_memory
+        if data is None:
+            return TrainSession(config, memory=memory, journal=reader)
+        return TrainSession.restore(config, data, memory=memory, journal=reader)
+
     def _load(self, record: TrainRecord) -> Runtime:
         config = record.train_config()
         saved = self.store.latest_checkpoint(record.id)
@@ -215,14 +244,14 @@ class Hub:
         if saved is not None:
             seq, data = saved
             try:
-                session = TrainSession.restore(config, data)
+                session = self._new_session(config, record.id, data)
             except ValueError as exc:
                 # A checkpoint of an earlier config version (or unreadable): the
                 # readings after it belong to this version; start its filter afresh.
                 log.warning("train %s: starting afresh after its checkpoint (%s)", record.name, exc)
         stored = self.store.last_alert_sequence(record.id)
         if session is None:
-            session = TrainSession(config)
+            session = self._new_session(config, record.id)
             if saved is not None:
                 # The replay below starts past the journal's beginning, so the fresh
                 # engine would not log the stored events again: number after them.
@@ -233,6 +262,7 @@ class Hub:
             if missing:
                 self.store.append_alert_events(record.id, missing)
         runtime = Runtime(record.name, record.id, record.version, config, session, journal_seq=seq)
+        _attach(runtime)
         for ids, tags, times, values in self.store.readings_after(record.id, seq):
             out = session.ingest(list(tags), times, values)
             self._store_output(runtime, out, live=False)
@@ -274,12 +304,13 @@ class Hub:
         with runtime.lock:
             self._checkpoint(runtime)
             version = self.store.add_train_version(name, config.model_dump_json(), source_text)
-            session = TrainSession(config)
+            session = self._new_session(config, runtime.train_id)
             old = runtime.session.alert_engine
             if old is not None and session.alert_engine is not None:
                 session.alert_engine = AlertEngine.from_state_dict(config, old.state_dict())
             fresh = Runtime(name, runtime.train_id, version, config, session)
             fresh.journal_seq = runtime.journal_seq
+            _attach(fresh)
             fresh.subscribers = runtime.subscribers
             # A restart before the new filter's first checkpoint would otherwise find
             # only the old version's, which this config cannot restore.
@@ -577,6 +608,13 @@ def _offer(queue: asyncio.Queue[LiveItem], item: LiveItem) -> None:
         queue.put_nowait(item)
     except asyncio.QueueFull:
         pass
+
+
+def _attach(runtime: Runtime) -> None:
+    """Point the session's journal reader at its runtime (for the applied journal id)."""
+    reader = runtime.session.journal
+    if isinstance(reader, JournalReader):
+        reader.runtime = runtime
 
 
 def _refresh_alerts(runtime: Runtime) -> None:

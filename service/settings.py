@@ -86,6 +86,11 @@ class Settings(BaseSettings):
     future_tolerance : float
         Readings stamped more than this far ahead of the server's clock are
         refused [s].
+    event_memory : float
+        Span of each train's in-memory event log [s of plant time] (at least its
+        largest dead time plus two snapshot intervals). Older readings stay in the
+        journal; a late reading sampled before the window reads them back, so the
+        estimates are the same as with the whole horizon in memory.
     checkpoint_every : float
         Interval between saved estimator checkpoints [s of plant time].
     retention_readings, retention_estimates : float or None
@@ -132,6 +137,14 @@ class Settings(BaseSettings):
         default=None, gt=0.0, description="Keep readings this long [s]; None: for ever."
     )
     retention_estimates: float | None = Field(
+    event_memory: float = Field(
+        default=600.0,
+        gt=0.0,
+        description=(
+            "Span of each train's in-memory event log [s of plant time]; a late reading "
+            "sampled before it reads older readings back from the journal."
+        ),
+    )
         default=None, gt=0.0, description="Keep estimates this long [s]; None: for ever."
     )
     max_batch: int = Field(default=10_000, ge=1, description="Most readings in one request.")

@@ -951,6 +951,39 @@ class Store:
             after = int(ids[-1])
 
     @_guarded
+    @_guarded
+    def readings_between(
+        self,
+        train_id: int,
+        tags: Sequence[str],
+        start: float,
+        stop: float,
+        *,
+        upto: int,
+    ) -> tuple[list[str], np.ndarray, np.ndarray]:
+        """Journaled readings of ``tags`` with start <= time <= stop, up to journal id ``upto``.
+
+        What a train's filter reads back when a late reading needs events older than
+        the ones it keeps in memory; ``upto`` (the last journal id applied) leaves out
+        the batch being applied. Returns (tags, times [s], values in the tag's
+        declared unit), in no particular order.
+        """
+        with self._read() as conn:
+            rows = conn.execute(
+                select(_Reading.tag, _Reading.time, _Reading.value).where(
+                    _Reading.train_id == train_id,
+                    _Reading.tag.in_(list(tags)),
+                    _Reading.time >= start,
+                    _Reading.time <= stop,
+                    _Reading.id <= upto,
+                )
+            ).all()
+        return (
+            [r[0] for r in rows],
+            np.array([r[1] for r in rows], dtype=np.float64),
+            np.array([r[2] for r in rows], dtype=np.float64),
+        )
+
     def _journal_page(
         self, train_id: int, after: int, limit: int
     ) -> Sequence[tuple[int, str, float, float]]:

@@ -1,0 +1,76 @@
+"""Late lab results in the service: read back from the journal, same numbers as in memory.
+
+The service keeps a short window of each train's event log in memory
+(``Settings.event_memory``) and reads older readings back from its journal when a
+late reading needs them. Its stored estimate history must then be what a session
+holding the whole history horizon in memory produces from the same batches.
+"""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+
+import numpy as np
+from fastapi.testclient import TestClient
+
+from estimator.config import load_train_config
+from estimator.session import TrainSession
+from service.app import create_app
+from service.settings import Settings
+from tests.service.test_app import ADMIN, DEMO, URL, demo_readings
+
+HOUR = 3600.0
+
+
+def late_lab_batches(end: float) -> list[list[dict[str, object]]]:
+    """Nine hours of the demo archive in 5-minute batches; the lab result 3 h late.
+
+    The archive's first lab result is sampled 8 h in: it arrives at 11 h.
+    """
+    readings = demo_readings(9.0, end - 3 * HOUR)
+    lab = [r for r in readings if r["tag"] == "LAB-202F"]
+    rest = [r for r in readings if r["tag"] != "LAB-202F"]
+    assert len(lab) >= 1
+    t0 = float(rest[0]["time"])  # type: ignore[arg-type]
+    batches: list[list[dict[str, object]]] = []
+    for k in range(int(12 * HOUR / 300)):
+        lo, hi = t0 + 300.0 * k, t0 + 300.0 * (k + 1)
+        batch = [r for r in rest if lo <= r["time"] < hi]  # type: ignore[operator]
+        batch += [r for r in lab if lo <= r["time"] + 3 * HOUR < hi]  # type: ignore[operator]
+        if batch:
+            batches.append(batch)
+    assert sum(b["tag"] == "LAB-202F" for batch in batches for b in batch) == len(lab)
+    return batches
+
+
+def test_history_after_late_lab_results_equals_a_whole_horizon_session(
+    database_url: str, tmp_path: Path
+):
+    batches = late_lab_batches(time.time())
+    settings = Settings(
+        data_dir=tmp_path, database_url=database_url, bootstrap_key=ADMIN, event_memory=600.0
+    )
+    session = TrainSession(load_train_config(DEMO))  # no journal: all 6 h in memory
+    expected: dict[float, float] = {}
+    with TestClient(create_app(settings)) as client:
+        client.headers["Authorization"] = f"Bearer {ADMIN}"
+        assert client.post("/api/v1/trains", json={"toml": DEMO.read_text()}).status_code == 201
+        for batch in batches:
+            r = client.post(f"{URL}/readings", json={"readings": batch})
+            assert r.status_code == 200 and not r.json()["refused"], r.text
+            out = session.ingest(
+                [b["tag"] for b in batch],  # type: ignore[misc]
+                [b["time"] for b in batch],
+                [b["value"] for b in batch],
+            )
+            for t, c in zip(out.estimates.time, out.estimates.concentration[:, 1, 1], strict=True):
+                expected[float(t)] = float(c)  # R-202 fructose; revisions replace
+        runtime = client.app.state.hub.get("wrenfield-line2")  # type: ignore[attr-defined]
+        held = len(runtime.session.filter.events()["time"])
+        rows = client.get(f"{URL}/estimates").json()["data"]
+    # The late results did revise hours of history, and memory held minutes of it.
+    assert session.filter.events()["time"].size > 10 * held
+    got = {r["time"]: r["vessels"][1]["concentration"]["fructose"]["value"] for r in rows}
+    assert sorted(got) == sorted(expected)
+    np.testing.assert_array_equal([got[t] for t in sorted(got)], [expected[t] for t in sorted(got)])
