@@ -1015,12 +1015,22 @@ def history_memory() -> dict[str, Any]:
     rng = random.Random(3)
     tags = list(LEVEL)
     t0 = math.floor(time.time()) - seconds - 60
-    session = TrainSession(config)
+    from service.settings import Settings
+
+    def no_readings(start: float, stop: float) -> tuple[list[str], Any, Any]:
+        return [], np.empty(0), np.empty(0)  # in-order readings never read back
+
+    # As the service runs it: the event log kept for event_memory, older readings
+    # read back from the journal (here never needed: the readings come in order).
+    memory = float(Settings.model_fields["event_memory"].default)
+    session = TrainSession(config, memory=memory, journal=no_readings)
     names = tags * seconds
     times = np.repeat(t0 + np.arange(seconds, dtype=np.float64), len(tags))
     values = [LEVEL[t][0] + LEVEL[t][1] * rng.gauss() for t in names]
     session.ingest(names, times, values)
-    held = sum(a.nbytes for a in session.filter.state_arrays().values())
+    held_filter = sum(a.nbytes for a in session.filter.state_arrays().values())
+    assert session.alert_engine is not None
+    held_alerts = session.alert_engine.window_bytes()
     began = time.perf_counter()
     blob = session.checkpoint()
     checkpoint_s = time.perf_counter() - began
@@ -1034,7 +1044,10 @@ def history_memory() -> dict[str, Any]:
     return {
         "kernels_s": kernels_s,
         "horizon": horizon,
-        "held": held,
+        "held": held_filter + held_alerts,
+        "held_filter": held_filter,
+        "held_alerts": held_alerts,
+        "memory": memory,
         "checkpoint_bytes": len(blob),
         "checkpoint_s": checkpoint_s,
         "ingest_s": sorted(costs)[len(costs) // 2],
@@ -1075,9 +1088,11 @@ def main() -> None:
         results.update(h)
         print(
             f"numba kernels compiled or loaded in {h['kernels_s']:.1f} s; one train's "
-            f"estimator holds {mb(h['held'])} with {h['horizon'] / 3600:g} h of once-a-second "
-            f"readings of 6 tags (the log is trimmed only once twice the horizon is held, so "
-            f"up to {mb(2 * h['held'])}); a checkpoint of it is {mb(h['checkpoint_bytes'])} "
+            f"session holds {mb(h['held'])} after {h['horizon'] / 3600:g} h of once-a-second "
+            f"readings of 6 tags: the filter {mb(h['held_filter'])} (snapshots over the "
+            f"horizon, events over the last {h['memory']:g} s; the log is trimmed once a "
+            f"quarter of it can go, so up to 4/3 of its events), the alert rules' windows "
+            f"{mb(h['held_alerts'])}; a checkpoint of it is {mb(h['checkpoint_bytes'])} "
             f"and takes {h['checkpoint_s'] * 1e3:.0f} ms; one more second of readings takes "
             f"{h['ingest_s'] * 1e3:.1f} ms (session only, no database)"
         )
@@ -1094,7 +1109,8 @@ def main() -> None:
 
     trains = max(1, results.get("registered", args.trains))
     base = results.get("rss_registered", 0)
-    low, high = base + trains * h["held"], base + trains * 2 * h["held"]
+    low = base + trains * h["held"]
+    high = low + trains * h["held_filter"] / 3
     every = float(Settings.model_fields["checkpoint_every"].default)
     results["rss_extrapolated"] = (low, high)
     print(

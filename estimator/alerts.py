@@ -245,6 +245,16 @@ class _TagHistory:
     gated: FloatArray = field(default_factory=_empty)
 
 
+def _merge_nis(held: FloatArray, new: FloatArray) -> FloatArray:
+    """Rows (time, group, NIS, dof) of both, sorted by (time, group); new rows win a tie."""
+    rows = np.concatenate([held, new])
+    order = np.lexsort((np.arange(len(rows)), rows[:, 1], rows[:, 0]))
+    rows = rows[order]
+    last = np.ones(len(rows), dtype=bool)
+    last[:-1] = (rows[1:, 0] != rows[:-1, 0]) | (rows[1:, 1] != rows[:-1, 1])
+    return rows[last]
+
+
 def _merge(
     times: FloatArray, values: FloatArray, new_t: FloatArray, new_v: FloatArray
 ) -> tuple[FloatArray, FloatArray]:
@@ -362,7 +372,9 @@ class AlertEngine:
         self._tags = list(config.tags())
         self._units = config.tag_units()
         self._history = {tag: _TagHistory() for tag in self._tags}
-        self._nis: dict[tuple[float, int], tuple[float, float]] = {}
+        # Rows of (sample time, measurement group, NIS, degrees of freedom), sorted by
+        # (time, group), one per update: a rewind's rerun replaces its rows.
+        self._nis = np.empty((0, 4))
         self._activity = np.empty((0, 3))  # rows of (time, activity, activity_std)
         self._expected = np.empty((0, 1 + self._n))  # rows of (time, expected per vessel)
         self._register()
@@ -596,7 +608,9 @@ class AlertEngine:
         exp = np.column_stack([ctx.time, ctx.expected])
         self._expected = np.concatenate([self._expected, exp])
         self._expected = self._expected[self._expected[:, 0] >= now - self._settle]
-        keep_from = now - max(a.tag_spikes.window, a.model_mismatch.window)
+        # Tag histories serve the staleness, frozen and spike rules (the spike window
+        # and the last samples); NIS rows the mismatch window.
+        keep_from = now - a.tag_spikes.window
         for hist in self._history.values():
             cut = max(
                 0,
@@ -607,7 +621,7 @@ class AlertEngine:
             )
             hist.times, hist.values = hist.times[cut:], hist.values[cut:]
             hist.gated = hist.gated[hist.gated >= keep_from]
-        self._nis = {k: v for k, v in self._nis.items() if k[0] >= keep_from}
+        self._nis = self._nis[self._nis[:, 0] >= now - a.model_mismatch.window]
 
     def _absorb(self, health: HealthInput) -> None:
         """Add an update's readings, gated readings and NIS rows to the windows."""
@@ -624,9 +638,10 @@ class AlertEngine:
             sel = gated_tags == tag
             if sel.any():
                 hist.gated = np.unique(np.concatenate([hist.gated, gated_times[sel]]))
-        for t, nis, dof, group in np.asarray(health.nis, dtype=np.float64).reshape(-1, 4):
-            if math.isfinite(t) and math.isfinite(nis) and dof > 0:
-                self._nis[(float(t), int(group))] = (float(nis), float(dof))
+        rows = np.asarray(health.nis, dtype=np.float64).reshape(-1, 4)
+        ok = np.isfinite(rows[:, 0]) & np.isfinite(rows[:, 1]) & (rows[:, 2] > 0)
+        if ok.any():
+            self._nis = _merge_nis(self._nis, rows[ok][:, [0, 3, 1, 2]])
 
     def _evaluations(self, ctx: _Rows) -> Iterator[_Eval]:
         """Every registered alert's tests; health and inputs first (causes use them)."""
@@ -1068,12 +1083,7 @@ class AlertEngine:
 
     def _mismatch(self, t: FloatArray) -> _Eval:
         rule = self.config.alerts.model_mismatch
-        if self._nis:
-            keys = sorted(self._nis)
-            times = np.array([key[0] for key in keys])
-            vals = np.array([self._nis[key] for key in keys])
-        else:
-            times, vals = np.empty(0), np.empty((0, 2))
+        times, vals = self._nis[:, 0], self._nis[:, 2:]
         s_nis = np.concatenate([[0.0], np.cumsum(vals[:, 0])])
         s_dof = np.concatenate([[0.0], np.cumsum(vals[:, 1])])
         hi_i = np.searchsorted(times, t, side="right")
@@ -1126,6 +1136,13 @@ class AlertEngine:
             unit, scale, offset = "degC", 1.0, 273.15
         return f"{(temperature - offset) / scale:.1f} {unit}"
 
+    def window_bytes(self) -> int:
+        """Bytes held in the rules' windows (activity, expectation, tag histories, NIS)."""
+        held = self._activity.nbytes + self._expected.nbytes + self._nis.nbytes
+        for h in self._history.values():
+            held += h.times.nbytes + h.values.nbytes + h.gated.nbytes
+        return held
+
     def state_dict(self) -> dict[str, Any]:
         """Return the engine's whole state as JSON-safe builtins.
 
@@ -1148,7 +1165,7 @@ class AlertEngine:
                 }
                 for tag, h in self._history.items()
             },
-            "nis": [[t, g, nis, dof] for (t, g), (nis, dof) in sorted(self._nis.items())],
+            "nis": self._nis.tolist(),
         }
 
     @classmethod
@@ -1190,9 +1207,9 @@ class AlertEngine:
                         np.array(saved["values"], dtype=np.float64),
                         np.array(saved["gated"], dtype=np.float64),
                     )
-            engine._nis = {
-                (float(t), int(g)): (float(nis), float(dof)) for t, g, nis, dof in data["nis"]
-            }
+            engine._nis = _merge_nis(
+                np.empty((0, 4)), np.array(data["nis"], dtype=np.float64).reshape(-1, 4)
+            )
         except (KeyError, TypeError) as exc:
             raise ValueError(f"not an alert engine state: missing or malformed {exc}") from None
         return engine
