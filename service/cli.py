@@ -531,6 +531,65 @@ def _register_train(store: Any, path: Path) -> None:
         store.create_train(config.name, config.title, config.model_dump_json(), path.read_text())
 
 
+@app.command(
+    help=(
+        "Run the historian bridge: read CSV drop folders and OPC UA servers, spool every "
+        "reading locally, post them to the service, publish estimates back."
+    )
+)
+def bridge(
+    config: Annotated[
+        Path, typer.Option("--config", metavar="BRIDGE.toml", help="Bridge configuration file.")
+    ],
+    once: Annotated[
+        bool,
+        typer.Option(
+            "--once",
+            help="Read every source once, drain the spool, exit (for cron): 0 when all was "
+            "sent, 1 when readings are left for the next run.",
+        ),
+    ] = False,
+    json_logs: Annotated[bool, typer.Option("--json-logs", help="Log JSON lines.")] = False,
+) -> None:
+    """Run the bridge until SIGTERM or SIGINT, or once with ``--once``.
+
+    Parameters
+    ----------
+    config : pathlib.Path
+        The bridge's TOML file (see :mod:`service.bridge.config`).
+    once : bool
+        Read each source once, drain the spool, append write-back once, exit.
+    json_logs : bool
+        Log JSON lines instead of text lines.
+
+    Raises
+    ------
+    typer.Exit
+        Status 2 for an invalid bridge file (one line per problem) or a setup
+        problem (missing key, folder or secret; spool held by another bridge);
+        status 1 when a ``--once`` run left readings in the spool.
+    """
+    if not config.is_file():
+        what = "is not a file" if config.exists() else "does not exist"
+        raise _fail(f"error: {config} {what}")
+
+    from estimator.errors import ConfigError
+    from service.bridge.config import load_bridge_config
+    from service.bridge.runner import BridgeSetupError, configure_logging, run_bridge
+
+    try:
+        settings = load_bridge_config(config)
+    except ConfigError as exc:
+        raise _fail(_problem_lines(exc)) from None
+    configure_logging(json_logs)
+    try:
+        status = run_bridge(settings, once=once)
+    except BridgeSetupError as exc:
+        raise _fail(f"error: {config}: {exc}") from None
+    if status:
+        raise typer.Exit(status)
+
+
 def _add_keys_commands() -> None:
     from service.keys_cli import keys_app
 
