@@ -32,9 +32,14 @@ Measured, in this order, each printed with its target:
 3. Single-reading posts: at a steady 200 per second for 20 s from the asyncio
    client, latency counted from each request's scheduled send time (so a slow
    server cannot hide its backlog); target p99 < 25 ms. Then the most single
-   posts per second wrk gets, and its ratio to the bare ceiling. Each test feeds
-   a train of its own (a copy of the demo train) with one reading every 5 ms of
-   reading time, in turn FI-200, TI-201, TI-202, AI-200G.
+   posts per second wrk gets, and its ratio to the bare ceiling. Single posts
+   come as a plant sends them, each tag of a train once a second of reading time
+   (FI-200, TI-201, TI-202, AI-200G in turn, a time point every 0.25 s): the
+   steady 200/s feeds 50 copies of the demo train in real time (reading time =
+   the request's due wall time, 4 posts/s each); wrk, which keeps one time cursor,
+   feeds one copy starting a week back, as fast as it answers. (One train fed 200
+   readings a second of its own reading time is no plant's load: every product-
+   analyzer reading then reruns 48,000 events of its 4-minute dead time.)
 4. 1,000 trains live: a fresh server, 1,000 copies of the demo train registered
    through POST /api/v1/trains (wrenfield-b0000, ...), then every train's six tags
    once per second of wall time for 30 s (each second, 1,000 requests of 6
@@ -107,7 +112,10 @@ LEVEL = {
     "LAB-202F": (1020.0, 12.0),
 }
 SINGLE_TAGS = ("FI-200", "TI-201", "TI-202", "AI-200G")
-SINGLE_STEP = 0.005  # s of reading time between single posts (200/s of a live train)
+# Single posts come as a plant sends them: each of a train's four rotating tags once
+# a second of reading time, so one time point every 0.25 s.
+SINGLE_STEP = 0.25  # s of reading time between a train's single posts
+RATE_TRAINS = 50  # trains sharing the steady single-post rate (4 posts/s each at 200/s)
 
 
 # ---------------------------------------------------------------------------- bare app
@@ -508,7 +516,7 @@ class RateResult:
 async def constant_rate(
     port: int,
     key: str,
-    path: str,
+    path: str | Callable[[int], str],
     body_for: Callable[[int, float], bytes],
     rate: float,
     seconds: float,
@@ -517,7 +525,8 @@ async def constant_rate(
 ) -> RateResult:
     """Send ``rate`` requests per second for ``seconds``, on schedule, whatever the answers.
 
-    Request i is due at start + i / rate; its body is ``body_for(i, due wall time)``.
+    Request i is due at start + i / rate; it goes to ``path`` (or ``path(i)``) with
+    the body ``body_for(i, due wall time)``.
     A request waits for a free connection when all ``connections`` are busy, and
     that wait counts in its latency, which runs from its due time to its answer.
     Requests unanswered ``drain`` seconds after the last is due count as infinite.
@@ -542,7 +551,8 @@ async def constant_rate(
         most = max(most, in_flight)
         conn = await pool.get()
         try:
-            status, body = await conn.post(path, body_for(i, wall + (due - begin)))
+            target = path(i) if callable(path) else path
+            status, body = await conn.post(target, body_for(i, wall + (due - begin)))
             latencies[i] = clock() - due
             tally.add(status, body)
         finally:
@@ -800,7 +810,8 @@ def part_service(folder: Path, args: argparse.Namespace, key: str) -> dict[str, 
         with httpx.Client(
             base_url=server.base, headers={"Authorization": f"Bearer {key}"}, timeout=60.0
         ) as client:
-            for name in ("bench-single-max", "bench-single-rate"):
+            rate_trains = [f"bench-rate-{k:02d}" for k in range(RATE_TRAINS)]
+            for name in ("bench-single-max", *rate_trains):
                 r = client.post(f"{API}/trains", json={"toml": demo_toml(name)})
                 r.raise_for_status()
 
@@ -808,8 +819,8 @@ def part_service(folder: Path, args: argparse.Namespace, key: str) -> dict[str, 
         counts = server_counts(server, key)
         w1 = run_wrk(
             server.base, "ingest.lua", args.seconds, args.connections,
-            [f"{API}/trains/bench-single-max/readings", key, f"{time.time():.3f}",
-             str(SINGLE_STEP), "1", "single"],
+            [f"{API}/trains/bench-single-max/readings", key,
+             f"{math.floor(time.time()) - 7 * 86400}", str(SINGLE_STEP), "1", "single"],
         )  # fmt: skip
         server.wait_idle()
         amplification = rows_per_reading(counts, server_counts(server, key))
@@ -826,12 +837,18 @@ def part_service(folder: Path, args: argparse.Namespace, key: str) -> dict[str, 
 
         rng = random.Random(11)
 
+        # Request i goes to train i mod 50, stamped with its due wall time: each
+        # train gets its four tags in turn, every tag once a second, in real time.
         def single(i: int, t: float) -> bytes:
-            return batch_body([reading_json(SINGLE_TAGS[i % len(SINGLE_TAGS)], t, rng)])
+            tag = SINGLE_TAGS[(i // RATE_TRAINS) % len(SINGLE_TAGS)]
+            return batch_body([reading_json(tag, t, rng)])
+
+        def rate_path(i: int) -> str:
+            return f"{API}/trains/{rate_trains[i % RATE_TRAINS]}/readings"
 
         result: RateResult = run_async(
             constant_rate(
-                server.port, key, f"{API}/trains/bench-single-rate/readings", single,
+                server.port, key, rate_path, single,
                 args.rate, args.rate_seconds, 64, args.drain,
             )
         )  # fmt: skip

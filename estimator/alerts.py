@@ -246,8 +246,19 @@ class _TagHistory:
 
 
 def _merge_nis(held: FloatArray, new: FloatArray) -> FloatArray:
-    """Rows (time, group, NIS, dof) of both, sorted by (time, group); new rows win a tie."""
-    rows = np.concatenate([held, new])
+    """Rows (time, group, NIS, dof) of both, sorted by (time, group); new rows win a tie.
+
+    Only the held rows from the new rows' earliest time on are sorted again (a
+    rewind reruns the recent past; new rows usually all come after the held ones).
+    """
+    if len(new) == 0:
+        return held
+    cut = int(np.searchsorted(held[:, 0], new[:, 0].min(), side="left"))
+    return np.concatenate([held[:cut], _sorted_nis(np.concatenate([held[cut:], new]))])
+
+
+def _sorted_nis(rows: FloatArray) -> FloatArray:
+    """Sort NIS rows by (time, group), the last of equal keys kept."""
     order = np.lexsort((np.arange(len(rows)), rows[:, 1], rows[:, 0]))
     rows = rows[order]
     last = np.ones(len(rows), dtype=bool)

@@ -820,6 +820,7 @@ class CascadeFilter:
             if not self._try_start():
                 return FilterRun.empty(self.model, refused)
             run = self._run_from(0)
+            self._trim()
         else:
             if len(events) == 0:
                 return FilterRun.empty(self.model, refused)
@@ -988,10 +989,13 @@ class CascadeFilter:
             self._ev_nis = np.concatenate([self._ev_nis, np.zeros(len(new))])
             self._ev_innov = np.concatenate([self._ev_innov, np.zeros(len(new))])
             return n_old
-        t = np.concatenate([self._ev_t, new[:, 0]])
-        kind = np.concatenate([self._ev_kind, new[:, 1].astype(np.int64)])
-        idx = np.concatenate([self._ev_idx, new[:, 2].astype(np.int64)])
-        val = np.concatenate([self._ev_val, new[:, 3]])
+        # Only the log from the earliest new time on is sorted again; before it
+        # nothing moves (every new event sorts after it).
+        p = int(np.searchsorted(self._ev_t, new[0, 0], side="left"))
+        t = np.concatenate([self._ev_t[p:], new[:, 0]])
+        kind = np.concatenate([self._ev_kind[p:], new[:, 1].astype(np.int64)])
+        idx = np.concatenate([self._ev_idx[p:], new[:, 2].astype(np.int64)])
+        val = np.concatenate([self._ev_val[p:], new[:, 3]])
         order = np.lexsort((val, idx, kind, t))
         t, kind, idx, val = t[order], kind[order], idx[order], val[order]
         # Exact repeats (same tag, time and value) are one reading; the stable sort
@@ -999,18 +1003,22 @@ class CascadeFilter:
         keep = np.ones(len(t), dtype=bool)
         same = (t[1:] == t[:-1]) & (kind[1:] == kind[:-1])
         keep[1:] = ~(same & (idx[1:] == idx[:-1]) & (val[1:] == val[:-1]))
-        is_new = order >= n_old
+        is_new = order >= n_old - p
         first_new = int(np.argmax(is_new & keep)) if np.any(is_new & keep) else len(t)
         status = np.concatenate(
-            [self._ev_status, np.full(len(new), STATUS_PENDING, dtype=np.int64)]
+            [self._ev_status[p:], np.full(len(new), STATUS_PENDING, dtype=np.int64)]
         )[order]
-        nis = np.concatenate([self._ev_nis, np.zeros(len(new))])[order]
-        innov = np.concatenate([self._ev_innov, np.zeros(len(new))])[order]
-        self._ev_t, self._ev_kind, self._ev_idx = t[keep], kind[keep], idx[keep]
-        self._ev_val, self._ev_status = val[keep], status[keep]
-        self._ev_nis, self._ev_innov = nis[keep], innov[keep]
+        nis = np.concatenate([self._ev_nis[p:], np.zeros(len(new))])[order]
+        innov = np.concatenate([self._ev_innov[p:], np.zeros(len(new))])[order]
+        self._ev_t = np.concatenate([self._ev_t[:p], t[keep]])
+        self._ev_kind = np.concatenate([self._ev_kind[:p], kind[keep]])
+        self._ev_idx = np.concatenate([self._ev_idx[:p], idx[keep]])
+        self._ev_val = np.concatenate([self._ev_val[:p], val[keep]])
+        self._ev_status = np.concatenate([self._ev_status[:p], status[keep]])
+        self._ev_nis = np.concatenate([self._ev_nis[:p], nis[keep]])
+        self._ev_innov = np.concatenate([self._ev_innov[:p], innov[keep]])
         # Positions before first_new are unchanged (every new event sorts at or after it).
-        return int(np.count_nonzero(keep[:first_new]))
+        return p + int(np.count_nonzero(keep[:first_new]))
 
     def _run_from(self, position: int) -> FilterRun:
         """Run the log from ``position`` to its end.

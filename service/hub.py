@@ -65,6 +65,10 @@ LiveItem = tuple[Literal["estimate", "alert"], dict[str, Any]]
 
 _PRIORITY_ORDER = {"high": 0, "warning": 1, "advisory": 2}
 
+#: Readings whose quality code is below this are refused: OPC UA quality bytes put
+#: bad at 0-63, uncertain at 64-191 (applied, like good) and good at 192-255.
+BAD_QUALITY = 64
+
 
 @dataclass
 class Runtime:
@@ -353,6 +357,20 @@ class Hub:
                 )
                 for i, r in zip(np.flatnonzero(~take).tolist(), refusals, strict=True)
             ]
+            # OPC UA quality: below 64 the source itself calls the value bad.
+            bad = take & np.array([q is not None and q < BAD_QUALITY for q in qualities])
+            for i in np.flatnonzero(bad).tolist():
+                refused.append(
+                    RefusedReading(
+                        index=i,
+                        tag=tags[i],
+                        time=float(t[i]),
+                        value=_json(float(v[i])),
+                        reason=f"quality code {qualities[i]} is bad (below {BAD_QUALITY}): "
+                        "not applied",
+                    )
+                )
+            take &= ~bad
             tolerance = self.settings.future_tolerance
             future = take & (t > now + tolerance)
             for i in np.flatnonzero(future).tolist():
@@ -419,13 +437,32 @@ class Hub:
         self.metrics.estimates.inc(len(rows))
 
     def _settle(self, runtime: Runtime, before: float = math.inf) -> None:
-        """Write the held estimate rows older than ``before`` (all by default)."""
-        ready = [t for t in runtime.unsettled if t < before]
-        if ready:
-            ready.sort()
-            self.store.write_estimates(runtime.train_id, [runtime.unsettled[t] for t in ready])
-            for t in ready:
-                del runtime.unsettled[t]
+        """Write the held estimate rows older than ``before`` (all by default).
+
+        With ``estimate_every`` set, one row per interval of plant time is stored:
+        the last of each interval, once the interval is over (a revision after a
+        late reading re-emits every row from its rewind on, so it stores the same
+        times again). Settling everything (before a checkpoint or a history read)
+        also stores the last row of the interval under way.
+        """
+        every = self.settings.estimate_every
+        if every and math.isfinite(before):
+            before = math.floor(before / every) * every
+        ready = sorted(t for t in runtime.unsettled if t < before)
+        if not ready:
+            return
+        rows = [runtime.unsettled.pop(t) for t in ready]
+        if not every:
+            self.store.write_estimates(runtime.train_id, rows)
+            return
+        bucket = np.floor(np.array(ready) / every)
+        last = np.append(bucket[1:] != bucket[:-1], True)
+        rows = [row for row, keep in zip(rows, last.tolist(), strict=True) if keep]
+        # The held rows run without a gap from the first to the last (a revision
+        # re-emits every row from its rewind on): what is stored from the first
+        # one's interval to the last one is superseded.
+        span = (float(bucket[0]) * every, ready[-1])
+        self.store.write_estimates(runtime.train_id, rows, replace=span)
 
     def settle(self, name: str) -> None:
         """Write every held estimate row of a train (before a read of its history)."""
@@ -603,11 +640,21 @@ def _settle_lag(runtime: Runtime) -> float:
 
 
 def _offer(queue: asyncio.Queue[LiveItem], item: LiveItem) -> None:
-    """Put without blocking; a subscriber too slow to keep up misses items, not the hub."""
+    """Put without blocking; a subscriber too slow to keep up misses items, not the hub.
+
+    What it misses are estimate rows (the latest is always readable): an alert
+    event on a full queue takes the place of the oldest item.
+    """
     try:
         queue.put_nowait(item)
     except asyncio.QueueFull:
-        pass
+        if item[0] != "alert":
+            return
+        try:
+            queue.get_nowait()
+        except asyncio.QueueEmpty:
+            pass
+        queue.put_nowait(item)
 
 
 def _attach(runtime: Runtime) -> None:
@@ -664,7 +711,16 @@ def _json(value: float) -> float | None:
 
 def _reason_key(reason: str) -> str:
     """Return a short metric label for a refusal reason."""
-    for key in ("unknown tag", "not a finite", "future", "horizon", "different value", "range"):
+    keys = (
+        "unknown tag",
+        "not a finite",
+        "future",
+        "horizon",
+        "different value",
+        "range",
+        "quality",
+    )
+    for key in keys:
         if key in reason:
             return key.replace(" ", "_")
     return "physical"

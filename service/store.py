@@ -999,7 +999,13 @@ class Store:
     # ------------------------------------------------------------------ estimates
 
     @_guarded
-    def write_estimates(self, train_id: int, rows: Sequence[Mapping[str, Any]]) -> int:
+    def write_estimates(
+        self,
+        train_id: int,
+        rows: Sequence[Mapping[str, Any]],
+        *,
+        replace: tuple[float, float] | None = None,
+    ) -> int:
         """Store estimate rows, replacing any stored row at the same time.
 
         Parameters
@@ -1010,6 +1016,10 @@ class Store:
             JSON-ready rows, each with its time under ``"t"`` [s since the epoch];
             the rest is stored as given. Within the batch the last row at a time
             wins.
+        replace : (float, float), optional
+            A time span [s] whose stored rows the new ones replace: every stored row
+            with start <= time <= stop is deleted in the same transaction (the
+            service keeps one row per interval, and a revision supersedes them).
 
         Returns
         -------
@@ -1039,6 +1049,14 @@ class Store:
         )
         params = [{"train_id": train_id, "time": t, "payload": p} for t, p in by_time.items()]
         with self._write() as conn:
+            if replace is not None:
+                conn.execute(
+                    delete(_Estimate).where(
+                        _Estimate.train_id == train_id,
+                        _Estimate.time >= replace[0],
+                        _Estimate.time <= replace[1],
+                    )
+                )
             conn.execute(statement, params)
         return len(params)
 

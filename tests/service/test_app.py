@@ -95,6 +95,8 @@ def test_every_refusal_reason_comes_back_and_nothing_refused_is_journaled(client
         {"tag": "FI-200", "time": now + 3600.0, "value": 12.0},
         dict(good),  # the same reading again: stored once
         {**good, "value": float(good["value"]) + 1.0},  # type: ignore[arg-type]
+        {"tag": "FI-200", "time": now - 1.0, "value": 12.0, "quality": 12},  # bad (OPC UA)
+        {"tag": "FI-200", "time": now - 2.0, "value": 12.0, "quality": 100},  # uncertain: taken
     ]
     r = client.post(
         f"{URL}/readings",
@@ -103,7 +105,7 @@ def test_every_refusal_reason_comes_back_and_nothing_refused_is_journaled(client
     )
     assert r.status_code == 200, r.text
     body = r.json()
-    assert body["accepted"] == 0 and body["duplicates"] == 1
+    assert body["accepted"] == 1 and body["duplicates"] == 1
     reasons = {x["index"]: x["reason"] for x in body["refused"]}
     assert reasons[0] == "unknown tag for this train"
     assert reasons[1] == "not a finite number"
@@ -111,7 +113,8 @@ def test_every_refusal_reason_comes_back_and_nothing_refused_is_journaled(client
     assert reasons[3] == "older than the history horizon (6 h)"
     assert reasons[4] == "time in the future beyond the tolerance (300 s)"
     assert reasons[6] == "a different value is already journaled for this tag and time"
-    assert 5 not in reasons
+    assert reasons[7] == "quality code 12 is bad (below 64): not applied"
+    assert 5 not in reasons and 8 not in reasons
 
 
 def test_bad_requests_are_422_naming_the_field(client: TestClient):

@@ -74,3 +74,45 @@ def test_history_after_late_lab_results_equals_a_whole_horizon_session(
     got = {r["time"]: r["vessels"][1]["concentration"]["fructose"]["value"] for r in rows}
     assert sorted(got) == sorted(expected)
     np.testing.assert_array_equal([got[t] for t in sorted(got)], [expected[t] for t in sorted(got)])
+
+
+def test_history_keeps_the_last_row_of_each_interval(database_url: str, tmp_path: Path):
+    # Transmitters every 2 s (rows every 2 s of plant time), stored one per 10 s.
+    end = time.time()
+    readings = [r for r in demo_readings(1.0, end) if r["tag"] != "LAB-202F"]
+    dense: list[dict[str, object]] = []
+    for r in readings:
+        dense.append(r)
+        if r["tag"] == "FI-200":  # the flow again 2, 4, ... 58 s later (archive: every 60 s)
+            dense += [{**r, "time": r["time"] + k} for k in range(2, 60, 2)]  # type: ignore[operator]
+    dense.sort(key=lambda r: r["time"])  # type: ignore[arg-type, return-value]
+    settings = Settings(data_dir=tmp_path, database_url=database_url, bootstrap_key=ADMIN)
+    assert settings.estimate_every == 10.0
+    session = TrainSession(load_train_config(DEMO))
+    final: dict[float, float] = {}
+    with TestClient(create_app(settings)) as client:
+        client.headers["Authorization"] = f"Bearer {ADMIN}"
+        assert client.post("/api/v1/trains", json={"toml": DEMO.read_text()}).status_code == 201
+        for k in range(0, len(dense), 150):
+            batch = dense[k : k + 150]
+            r = client.post(f"{URL}/readings", json={"readings": batch})
+            assert r.status_code == 200 and not r.json()["refused"], r.text
+            out = session.ingest(
+                [b["tag"] for b in batch],  # type: ignore[misc]
+                [b["time"] for b in batch],
+                [b["value"] for b in batch],
+            )
+            for t, c in zip(out.estimates.time, out.estimates.concentration[:, 2, 0], strict=True):
+                final[float(t)] = float(c)
+        rows = client.get(f"{URL}/estimates").json()["data"]
+        latest = client.get(f"{URL}/estimates/latest").json()
+    times = np.array(sorted(final))
+    buckets = np.floor(times / 10.0)
+    last_of_bucket = times[np.append(buckets[1:] != buckets[:-1], True)]
+    got = {r["time"]: r["vessels"][2]["concentration"]["glucose"]["value"] for r in rows}
+    # Every interval's last row, once the interval is over. (A checkpoint or a read
+    # stores the newest row of the interval under way; the last one replaces it.)
+    assert sorted(got) == last_of_bucket.tolist()
+    assert len(got) < len(final) / 4  # rows every 2 s, stored every 10 s
+    assert all(got[t] == final[t] for t in got)  # the revised values, dead time included
+    assert latest["time"] == times[-1]  # the latest estimate is every row's
