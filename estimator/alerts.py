@@ -89,7 +89,7 @@ __all__ = [
 _MINUTE = 60.0
 _HOUR = 3600.0
 _DAY = 86400.0
-_STATE_FORMAT = 1
+_STATE_FORMAT = 2
 
 ExpectedConversion = Callable[["EstimateBatch"], FloatArray]
 """What each vessel should convert at each estimate: batch -> array (k, N) [-]."""
@@ -238,11 +238,82 @@ class _Rows:
 
 @dataclass
 class _TagHistory:
-    """Recent readings of one tag: times [s] ascending, values [SI], gated times."""
+    """Recent readings of one tag: times [s] ascending, values [SI], gated times.
+
+    Readings older than the engine's fold age are kept only as counts per bin
+    (``binned``: rows of (bin end time [s], readings)), enough for the spike rule.
+    """
 
     times: FloatArray = field(default_factory=_empty)
     values: FloatArray = field(default_factory=_empty)
     gated: FloatArray = field(default_factory=_empty)
+    binned: FloatArray = field(default_factory=lambda: np.empty((0, 2)))
+
+
+#: Resolution of the windows the rules keep, as a fraction of each window: the
+#: activity and expectation series keep one row per window/720 (10 s of a 2 h
+#: window); NIS rows and reading counts older than the fold age are summed per
+#: window/240 (30 s of a 2 h window).
+_ROWS_PER_WINDOW = 720
+_BINS_PER_WINDOW = 240
+#: Offset of a folded NIS row's group, so its (time, group) key never meets a raw one.
+_FOLDED = 1_000_000.0
+
+
+def _grid_first(times: FloatArray, previous: float, step: float) -> np.ndarray:
+    """Mask of the rows that open a new grid interval of ``step`` [s].
+
+    ``previous`` is the time of the last row already kept (or -inf). Batching
+    does not change the answer: a row is kept when its interval differs from the
+    row before it, wherever the batch boundary falls.
+    """
+    if step <= 0.0:
+        return np.ones(len(times), dtype=bool)
+    bins = np.floor(np.asarray(times, dtype=np.float64) / step)
+    before = np.floor(previous / step) if math.isfinite(previous) else -np.inf
+    return bins != np.concatenate([[before], bins[:-1]])
+
+
+def _bin_sums(keys: FloatArray, values: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Return the unique rows of ``keys`` (k, m) and the column sums of ``values`` per row."""
+    uniq, inverse = np.unique(keys, axis=0, return_inverse=True)
+    inverse = inverse.reshape(-1)
+    sums = np.column_stack(
+        [
+            np.bincount(inverse, weights=values[:, c], minlength=len(uniq))
+            for c in range(values.shape[1])
+        ]
+    )
+    return uniq, sums
+
+
+def _fold_nis(rows: FloatArray, until: float, step: float) -> FloatArray:
+    """Sum the raw NIS rows older than ``until`` per bin of ``step`` [s] and group.
+
+    A folded row is (bin end time, group + _FOLDED, NIS sum, dof sum); the result
+    stays sorted by (time, group).
+    """
+    old = (rows[:, 0] < until) & (rows[:, 1] < _FOLDED)
+    if not old.any():
+        return rows
+    part = rows[old]
+    end = (np.floor(part[:, 0] / step) + 1.0) * step
+    folded = np.column_stack([end, part[:, 1] + _FOLDED, part[:, 2:]])
+    rest = rows[~old]
+    earlier = rest[rest[:, 1] >= _FOLDED]
+    keys, sums = _bin_sums(
+        np.concatenate([earlier, folded])[:, :2], np.concatenate([earlier, folded])[:, 2:]
+    )
+    merged = np.concatenate([np.column_stack([keys, sums]), rest[rest[:, 1] < _FOLDED]])
+    return merged[np.lexsort((merged[:, 1], merged[:, 0]))]
+
+
+def _fold_counts(binned: FloatArray, times: FloatArray, step: float) -> FloatArray:
+    """Add reading ``times`` to per-bin counts (rows of bin end time [s], count)."""
+    end = (np.floor(times / step) + 1.0) * step
+    rows = np.concatenate([binned, np.column_stack([end, np.ones(len(end))])])
+    keys, sums = _bin_sums(rows[:, :1], rows[:, 1:])
+    return np.column_stack([keys, sums])
 
 
 def _merge_nis(held: FloatArray, new: FloatArray) -> FloatArray:
@@ -376,6 +447,14 @@ class AlertEngine:
         self._health_since: float | None = None
         self._vessels = [v.name for v in config.vessels]
         self._n = len(self._vessels)
+        # NIS rows and reading times older than this are only kept as sums per bin
+        # [s]: the longest analyzer dead time (the reach of the rewinds that rerun
+        # them) and 5 min. A late result rerun from further back leaves the folded
+        # sums as they were.
+        dead = [m.dead_time for m in config.measurements if m.kind == "analyzer"]
+        dead += [c.dead_time for c in config.feed.composition.values() if not isinstance(c, float)]
+        self._fold_age = max(dead, default=0.0) + 300.0
+        self._folded_until = -math.inf
         # Two total residence times at nominal flow: how long a vessel needs to settle.
         q = config.feed.flow.nominal
         self._settle = 2.0 * sum(v.volume for v in config.vessels) / q if q > 0.0 else 0.0
@@ -613,15 +692,23 @@ class AlertEngine:
         now = float(ctx.time[-1])
         self.last_time = now
         a = self.config.alerts
-        act = np.column_stack([ctx.time, rows.activity, rows.activity_std])
+        # One row per interval of the activity and expectation series (see
+        # _ROWS_PER_WINDOW); the rules evaluate the same thinned series.
+        prev = float(self._activity[-1, 0]) if len(self._activity) else -math.inf
+        keep = _grid_first(ctx.time, prev, a.activity_falling.window / _ROWS_PER_WINDOW)
+        act = np.column_stack([ctx.time, rows.activity, rows.activity_std])[keep]
         self._activity = np.concatenate([self._activity, act])
         self._activity = self._activity[self._activity[:, 0] >= now - a.activity_falling.window]
-        exp = np.column_stack([ctx.time, ctx.expected])
+        prev = float(self._expected[-1, 0]) if len(self._expected) else -math.inf
+        keep = _grid_first(ctx.time, prev, self._settle / _ROWS_PER_WINDOW)
+        exp = np.column_stack([ctx.time, ctx.expected])[keep]
         self._expected = np.concatenate([self._expected, exp])
         self._expected = self._expected[self._expected[:, 0] >= now - self._settle]
         # Tag histories serve the staleness, frozen and spike rules (the spike window
         # and the last samples); NIS rows the mismatch window.
         keep_from = now - a.tag_spikes.window
+        fold_until = now - self._fold_age
+        spike_bin = a.tag_spikes.window / _BINS_PER_WINDOW
         for hist in self._history.values():
             cut = max(
                 0,
@@ -632,7 +719,18 @@ class AlertEngine:
             )
             hist.times, hist.values = hist.times[cut:], hist.values[cut:]
             hist.gated = hist.gated[hist.gated >= keep_from]
-        self._nis = self._nis[self._nis[:, 0] >= now - a.model_mismatch.window]
+            fold = min(
+                int(np.searchsorted(hist.times, fold_until)),
+                len(hist.times) - (a.tag_frozen.samples + 1),
+            )
+            if fold > 0:
+                hist.binned = _fold_counts(hist.binned, hist.times[:fold], spike_bin)
+                hist.times, hist.values = hist.times[fold:], hist.values[fold:]
+            hist.binned = hist.binned[hist.binned[:, 0] > keep_from]
+        window = a.model_mismatch.window
+        self._nis = _fold_nis(self._nis, fold_until, window / _BINS_PER_WINDOW)
+        self._folded_until = max(self._folded_until, fold_until)
+        self._nis = self._nis[self._nis[:, 0] >= now - window]
 
     def _absorb(self, health: HealthInput) -> None:
         """Add an update's readings, gated readings and NIS rows to the windows."""
@@ -651,6 +749,7 @@ class AlertEngine:
                 hist.gated = np.unique(np.concatenate([hist.gated, gated_times[sel]]))
         rows = np.asarray(health.nis, dtype=np.float64).reshape(-1, 4)
         ok = np.isfinite(rows[:, 0]) & np.isfinite(rows[:, 1]) & (rows[:, 2] > 0)
+        ok &= rows[:, 0] >= self._folded_until
         if ok.any():
             self._nis = _merge_nis(self._nis, rows[ok][:, [0, 3, 1, 2]])
 
@@ -833,10 +932,18 @@ class AlertEngine:
             )
         fall = a.activity_falling
         if fall.enabled:
-            t = np.concatenate([self._activity[:, 0], ctx.time])
-            y = np.concatenate([self._activity[:, 1], act])
-            s = np.concatenate([self._activity[:, 2], std])
-            slope, se, ok = _rolling_slope(t, y, s, fall.window, len(self._activity))
+            # The slope runs over the thinned series (one row per window/720): at a
+            # row that opens an interval it is computed; the others carry it on.
+            held = self._activity
+            prev = float(held[-1, 0]) if len(held) else -math.inf
+            keep = _grid_first(ctx.time, prev, fall.window / _ROWS_PER_WINDOW)
+            t = np.concatenate([held[:, 0], ctx.time[keep]])
+            y = np.concatenate([held[:, 1], act[keep]])
+            s = np.concatenate([held[:, 2], std[keep]])
+            start = max(len(held) - 1, 0)
+            slope, se, ok = _rolling_slope(t, y, s, fall.window, start)
+            at = np.cumsum(keep) - (0 if len(held) else 1)
+            slope, se, ok = slope[at], se[at], ok[at]
             rate = -slope
             lower = rate - fall.sigma_multiple * se
             yield _Eval(
@@ -1064,6 +1171,12 @@ class AlertEngine:
         count = np.searchsorted(hist.times, t, side="right") - np.searchsorted(
             hist.times, t - w, side="right"
         )
+        if len(hist.binned):  # older readings, counted per bin (by the bin's end)
+            ends = hist.binned[:, 0]
+            sums = np.concatenate([[0.0], np.cumsum(hist.binned[:, 1])])
+            hi = np.searchsorted(ends, t, side="right")
+            lo = np.searchsorted(ends, t - w, side="right")
+            count = count + (sums[hi] - sums[lo]).astype(np.int64)
         gated = np.searchsorted(hist.gated, t, side="right") - np.searchsorted(
             hist.gated, t - w, side="right"
         )
@@ -1173,10 +1286,12 @@ class AlertEngine:
                     "times": h.times.tolist(),
                     "values": h.values.tolist(),
                     "gated": h.gated.tolist(),
+                    "binned": h.binned.tolist(),
                 }
                 for tag, h in self._history.items()
             },
             "nis": self._nis.tolist(),
+            "folded_until": self._folded_until if math.isfinite(self._folded_until) else None,
         }
 
     @classmethod
@@ -1217,7 +1332,10 @@ class AlertEngine:
                         np.array(saved["times"], dtype=np.float64),
                         np.array(saved["values"], dtype=np.float64),
                         np.array(saved["gated"], dtype=np.float64),
+                        np.array(saved["binned"], dtype=np.float64).reshape(-1, 2),
                     )
+            folded = data["folded_until"]
+            engine._folded_until = -math.inf if folded is None else float(folded)
             engine._nis = _merge_nis(
                 np.empty((0, 4)), np.array(data["nis"], dtype=np.float64).reshape(-1, 4)
             )

@@ -541,7 +541,7 @@ def test_state_dict_of_another_train_is_refused():
     with pytest.raises(ValueError, match="another-line"):
         AlertEngine.from_state_dict(other, AlertEngine(CONFIG).state_dict())
     with pytest.raises(ValueError, match="not an alert engine state"):
-        AlertEngine.from_state_dict(CONFIG, {"format": 1, "train": CONFIG.name})
+        AlertEngine.from_state_dict(CONFIG, {"format": 2, "train": CONFIG.name})
 
 
 # Configuration
@@ -692,3 +692,29 @@ def test_health_input_from_a_session_leaves_out_refused_readings():
     health = HealthInput.from_session(session, tags, times, values, out)
     assert health.reading_tags == ("TI-201",)
     assert health.reading_values == pytest.approx([273.15 + 58.0])
+
+
+def test_rule_windows_stay_bounded_at_one_reading_per_tag_per_second():
+    # Every tag once a second (analyzers included, the heaviest feed the service is
+    # sized for): the rules' windows hold thinned series and folded sums, so what
+    # they keep stops growing once the longest window (2 h) is full.
+    session = TrainSession(CONFIG)
+    assert session.alert_engine is not None
+    level = {"FI-200": 12.0, "TI-201": 58.0, "TI-202": 58.0, "AI-200G": 2400.0,
+             "AI-203G": 1300.0, "LAB-202F": 900.0}  # fmt: skip
+    rng = np.random.default_rng(4)
+    held = {}
+    t0 = 1.8e9
+    for minute in range(4 * 60):
+        seconds = t0 + 60.0 * minute + np.arange(60.0)
+        tags = list(level) * 60
+        noise = rng.normal(0.0, 0.002, len(tags))
+        session.ingest(
+            tags, np.repeat(seconds, 6), [level[t] * (1 + e) for t, e in zip(tags, noise)]
+        )
+        if minute + 1 in (150, 240):
+            held[minute + 1] = session.alert_engine.window_bytes()
+    assert held[240] <= 1.1 * held[150]
+    # About 3 kB per minute of raw readings and NIS rows in the fold age (9 min),
+    # plus 720 activity rows and the bins: far below the 2 h of raw rows (~1.3 MB).
+    assert held[240] < 250_000
