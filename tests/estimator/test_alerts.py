@@ -709,9 +709,8 @@ def test_rule_windows_stay_bounded_at_one_reading_per_tag_per_second():
         seconds = t0 + 60.0 * minute + np.arange(60.0)
         tags = list(level) * 60
         noise = rng.normal(0.0, 0.002, len(tags))
-        session.ingest(
-            tags, np.repeat(seconds, 6), [level[t] * (1 + e) for t, e in zip(tags, noise)]
-        )
+        values = [level[t] * (1 + e) for t, e in zip(tags, noise, strict=True)]
+        session.ingest(tags, np.repeat(seconds, 6), values)
         if minute + 1 in (150, 240):
             held[minute + 1] = session.alert_engine.window_bytes()
     assert held[240] <= 1.1 * held[150]
