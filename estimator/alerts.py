@@ -275,9 +275,8 @@ def _grid_first(times: FloatArray, previous: float, step: float) -> np.ndarray:
 
 
 def _bin_sums(keys: FloatArray, values: FloatArray) -> tuple[FloatArray, FloatArray]:
-    """Return the unique rows of ``keys`` (k, m) and the column sums of ``values`` per row."""
-    uniq, inverse = np.unique(keys, axis=0, return_inverse=True)
-    inverse = inverse.reshape(-1)
+    """Return the sorted unique ``keys`` (k,) and the column sums of ``values`` per key."""
+    uniq, inverse = np.unique(keys, return_inverse=True)
     sums = np.column_stack(
         [
             np.bincount(inverse, weights=values[:, c], minlength=len(uniq))
@@ -300,11 +299,13 @@ def _fold_nis(rows: FloatArray, until: float, step: float) -> FloatArray:
     end = (np.floor(part[:, 0] / step) + 1.0) * step
     folded = np.column_stack([end, part[:, 1] + _FOLDED, part[:, 2:]])
     rest = rows[~old]
-    earlier = rest[rest[:, 1] >= _FOLDED]
-    keys, sums = _bin_sums(
-        np.concatenate([earlier, folded])[:, :2], np.concatenate([earlier, folded])[:, 2:]
-    )
-    merged = np.concatenate([np.column_stack([keys, sums]), rest[rest[:, 1] < _FOLDED]])
+    both = np.concatenate([rest[rest[:, 1] >= _FOLDED], folded])
+    pieces = [rest[rest[:, 1] < _FOLDED]]
+    for group in np.unique(both[:, 1]).tolist():  # a few measurement groups
+        mine = both[both[:, 1] == group]
+        ends, sums = _bin_sums(mine[:, 0], mine[:, 2:])
+        pieces.append(np.column_stack([ends, np.full(len(ends), group), sums]))
+    merged = np.concatenate(pieces)
     return merged[np.lexsort((merged[:, 1], merged[:, 0]))]
 
 
@@ -312,7 +313,7 @@ def _fold_counts(binned: FloatArray, times: FloatArray, step: float) -> FloatArr
     """Add reading ``times`` to per-bin counts (rows of bin end time [s], count)."""
     end = (np.floor(times / step) + 1.0) * step
     rows = np.concatenate([binned, np.column_stack([end, np.ones(len(end))])])
-    keys, sums = _bin_sums(rows[:, :1], rows[:, 1:])
+    keys, sums = _bin_sums(rows[:, 0], rows[:, 1:])
     return np.column_stack([keys, sums])
 
 
@@ -707,7 +708,10 @@ class AlertEngine:
         # Tag histories serve the staleness, frozen and spike rules (the spike window
         # and the last samples); NIS rows the mismatch window.
         keep_from = now - a.tag_spikes.window
+        # Folded once a quarter of the fold age has gathered past it (amortised).
         fold_until = now - self._fold_age
+        if fold_until < self._folded_until + 0.25 * self._fold_age:
+            fold_until = -math.inf
         spike_bin = a.tag_spikes.window / _BINS_PER_WINDOW
         for hist in self._history.values():
             cut = max(

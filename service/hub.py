@@ -118,23 +118,20 @@ def estimate_rows(config: TrainConfig, batch: EstimateBatch) -> list[dict[str, A
     x, xs, xd (N conversions, 1-sigma, design expectation [-]), a and as (activity
     and 1-sigma), f (S feed concentrations [mol/m^3]), q (flow [m^3/s]).
     """
-    rows = []
-    for k in range(len(batch)):
-        rows.append(
-            {
-                "t": float(batch.time[k]),
-                "c": batch.concentration[k].tolist(),
-                "cs": batch.concentration_std[k].tolist(),
-                "x": batch.conversion[k].tolist(),
-                "xs": batch.conversion_std[k].tolist(),
-                "xd": batch.design_conversion[k].tolist(),
-                "a": float(batch.activity[k]),
-                "as": float(batch.activity_std[k]),
-                "f": batch.feed[k].tolist(),
-                "q": float(batch.inputs[k, 0]),
-            }
-        )
-    return rows
+    columns = {
+        "t": batch.time.tolist(),
+        "c": batch.concentration.tolist(),
+        "cs": batch.concentration_std.tolist(),
+        "x": batch.conversion.tolist(),
+        "xs": batch.conversion_std.tolist(),
+        "xd": batch.design_conversion.tolist(),
+        "a": batch.activity.tolist(),
+        "as": batch.activity_std.tolist(),
+        "f": batch.feed.tolist(),
+        "q": batch.inputs[:, 0].tolist(),
+    }
+    keys = tuple(columns)
+    return [dict(zip(keys, values, strict=True)) for values in zip(*columns.values(), strict=True)]
 
 
 def estimate_public(config: TrainConfig, row: dict[str, Any]) -> dict[str, Any]:
