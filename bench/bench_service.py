@@ -687,8 +687,8 @@ async def feed_trains(
 
 
 def mb(n: float) -> str:
-    """Bytes as MB for people."""
-    return f"{n / 1e6:,.0f} MB"
+    """Bytes as MB (kB below one MB) for people."""
+    return f"{n / 1e6:,.0f} MB" if n >= 1e6 else f"{n / 1e3:,.0f} kB"
 
 
 def ms(s: float) -> str:

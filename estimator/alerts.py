@@ -67,7 +67,8 @@ from estimator.alarm_state import (
     format_time,
 )
 from estimator.config import TemperatureTag, TrainConfig
-from estimator.model import FloatArray
+from estimator.conversion import DesignTwin
+from estimator.model import FloatArray, TrainModel
 
 if TYPE_CHECKING:
     from estimator.session import EstimateBatch, SessionOutput, TrainSession
@@ -157,6 +158,43 @@ class HealthInput:
     def empty(cls) -> HealthInput:
         """Return a health input of an update in which nothing was read."""
         return cls()
+
+    @classmethod
+    def concat(cls, parts: Sequence[HealthInput]) -> HealthInput:
+        """Join the health inputs of successive updates, in order."""
+        if len(parts) == 1:
+            return parts[0]
+        return cls(
+            reading_tags=tuple(t for p in parts for t in p.reading_tags),
+            reading_times=np.concatenate([_empty(), *(p.reading_times for p in parts)]),
+            reading_values=np.concatenate([_empty(), *(p.reading_values for p in parts)]),
+            gated_tags=tuple(t for p in parts for t in p.gated_tags),
+            gated_times=np.concatenate([_empty(), *(p.gated_times for p in parts)]),
+            nis=np.concatenate([_empty(4), *(p.nis.reshape(-1, 4) for p in parts)]),
+        )
+
+    def to_dict(self) -> dict[str, Any]:
+        """Return the input as JSON-safe builtins (for a session checkpoint)."""
+        return {
+            "reading_tags": list(self.reading_tags),
+            "reading_times": self.reading_times.tolist(),
+            "reading_values": self.reading_values.tolist(),
+            "gated_tags": list(self.gated_tags),
+            "gated_times": self.gated_times.tolist(),
+            "nis": self.nis.tolist(),
+        }
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> HealthInput:
+        """Rebuild from :meth:`to_dict` output."""
+        return cls(
+            reading_tags=tuple(data["reading_tags"]),
+            reading_times=np.array(data["reading_times"], dtype=np.float64),
+            reading_values=np.array(data["reading_values"], dtype=np.float64),
+            gated_tags=tuple(data["gated_tags"]),
+            gated_times=np.array(data["gated_times"], dtype=np.float64),
+            nis=np.array(data["nis"], dtype=np.float64).reshape(-1, 4),
+        )
 
     @classmethod
     def from_session(
@@ -440,9 +478,17 @@ class AlertEngine:
 
     def __init__(self, config: TrainConfig, *, expected: ExpectedConversion | None = None) -> None:
         self.config = config
+        if expected is None:
+            dynamic = config.alerts.conversion_shortfall.expectation == "dynamic"
+            expected = DesignTwin(TrainModel.from_config(config)) if dynamic else None
         self.expected: ExpectedConversion = expected or design_expectation
         # What messages call the expectation.
-        self._expectation = "design" if self.expected is design_expectation else "expected"
+        if self.expected is design_expectation:
+            self._expectation = "design"
+        elif isinstance(self.expected, DesignTwin):
+            self._expectation = "design model's"
+        else:
+            self._expectation = "expected"
         self._book = AlertBook(config.alerts.max_shelve)
         self.last_time: float | None = None
         self._health_since: float | None = None
@@ -1296,6 +1342,7 @@ class AlertEngine:
             },
             "nis": self._nis.tolist(),
             "folded_until": self._folded_until if math.isfinite(self._folded_until) else None,
+            "twin": self.expected.state_dict() if isinstance(self.expected, DesignTwin) else None,
         }
 
     @classmethod
@@ -1326,6 +1373,8 @@ class AlertEngine:
             engine.last_time = _opt(data["last_time"])
             engine._health_since = _opt(data["health_since"])
             engine._book.load(data["book"])
+            if isinstance(engine.expected, DesignTwin) and data.get("twin") is not None:
+                engine.expected.load(data["twin"])
             engine._activity = np.array(data["activity"], dtype=np.float64).reshape(-1, 3)
             engine._expected = np.array(data["expected"], dtype=np.float64).reshape(
                 -1, 1 + engine._n

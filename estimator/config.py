@@ -652,8 +652,13 @@ class EstimatorConfig(BaseModel):
 class ConversionShortfallAlert(BaseModel):
     """Per vessel: the estimated conversion falls short of the expected one.
 
-    The shortfall is ``expected - estimated`` conversion; the expectation is the
-    design model's at the current inputs. A band is exceeded only when the shortfall
+    The shortfall is ``expected - estimated`` conversion. The expectation is the
+    design model's (design activity) driven by the measured inputs: ``"dynamic"``
+    (default) runs its balances through the same flow, temperature and feed history,
+    so a feed step or a throughput change moves the expectation as it moves the
+    plant; ``"steady"`` takes its steady state at each moment's inputs (the product
+    form), which runs ahead of the plant after every change. A band is exceeded only
+    when the shortfall
     exceeds it by more than ``sigma_multiple`` times the estimate's own 1-sigma,
     ``shortfall - band > k * conversion_std``, and the alert clears once
     ``shortfall - (band - deadband) <= k * conversion_std``.
@@ -676,11 +681,14 @@ class ConversionShortfallAlert(BaseModel):
         ``warning_band``; default 0.005.
     on_delay, off_delay : float
         [s]; defaults 15 min and 30 min.
+    expectation : {"dynamic", "steady"}
+        How the expectation follows the inputs (above); default "dynamic".
     """
 
     model_config = _MODEL
 
     enabled: StrictBool = True
+    expectation: Literal["dynamic", "steady"] = "dynamic"
     warning_band: Annotated[float, quantity("dimensionless", gt=0.0, lt=1.0)] = 0.01
     high_band: Annotated[float, quantity("dimensionless", gt=0.0, lt=1.0)] = 0.03
     sigma_multiple: Annotated[float, quantity("dimensionless", ge=0.0)] = 2.0
@@ -960,6 +968,12 @@ class AlertsConfig(BaseModel):
     temperature_range : TemperatureRangeAlert
     max_shelve : float
         Longest an operator may shelve an alert [s]; default 24 h.
+    evaluate_every : float
+        The rules run once this much plant time has passed since they last ran,
+        over every estimate since [s]; default 10 s, 0 for every update. Each
+        estimate is judged at its own time either way (delays and windows are in
+        plant time); the interval only sets how soon after its reading an alert
+        is announced, and how often the rules' cost is paid.
     """
 
     model_config = _MODEL
@@ -974,6 +988,7 @@ class AlertsConfig(BaseModel):
     flow_low: FlowLowAlert = FlowLowAlert()
     temperature_range: TemperatureRangeAlert = TemperatureRangeAlert()
     max_shelve: Annotated[float, quantity("time", gt=0.0)] = 24 * _HOUR
+    evaluate_every: Annotated[float, quantity("time", ge=0.0)] = 10.0
 
 
 def _check_species_list(value: tuple[str, ...]) -> tuple[str, ...]:

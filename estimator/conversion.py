@@ -1,15 +1,23 @@
 """What conversion the design model expects of each vessel.
 
-The design expectation is the steady state of the balances at the current flow,
-temperatures and feed with the design activity: for first order A -> B the product
-form ``X_n = 1 - prod_{j<=n} 1 / (1 + k_j tau_j)`` (Levenspiel, *Chemical Reaction
-Engineering*, 3rd ed., ch. 6; Fogler, *Elements of CRE*, 5th ed., sec. 5.3), and
-for A <=> B the vessel-by-vessel solution of the same balances. Computed for many
-rows at once, so a replay can set every estimate beside its expectation.
+Two expectations, both of the design model (design activity) at the measured
+inputs:
+
+- the steady state of the balances at the current flow, temperatures and feed: for
+  first order A -> B the product form ``X_n = 1 - prod_{j<=n} 1 / (1 + k_j tau_j)``
+  (Levenspiel, *Chemical Reaction Engineering*, 3rd ed., ch. 6; Fogler, *Elements
+  of CRE*, 5th ed., sec. 5.3), and for A <=> B the vessel-by-vessel solution of the
+  same balances (:func:`design_conversion`, computed for many rows at once);
+- the dynamic one (:class:`DesignTwin`): the same balances integrated through the
+  measured input history, so after a feed step or a throughput change it moves as
+  the vessels do rather than jumping to the new steady state at once.
 """
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING, Any
+
+import numba
 import numpy as np
 
 from estimator.model import (
@@ -24,9 +32,14 @@ from estimator.model import (
     IP_PRODUCT,
     IP_REACTANT,
     IP_REVERSIBLE,
+    IP_S,
     FloatArray,
     TrainModel,
 )
+from estimator.propagate import propagate_into, workspace
+
+if TYPE_CHECKING:
+    from estimator.session import EstimateBatch
 
 
 def design_conversion(
@@ -97,3 +110,117 @@ def feed_inputs(model: TrainModel, inputs: FloatArray, states: FloatArray) -> Fl
         if idx >= 0:
             u[:, 1 + n_vessels + s] = states[:, idx]
     return u
+
+
+@numba.njit(cache=True, error_model="numpy")
+def _twin_run(
+    x: FloatArray,
+    t: float,
+    u: FloatArray,
+    times: FloatArray,
+    inputs: FloatArray,
+    feed_state: np.ndarray,
+    activity_state: int,
+    activity: float,
+    ip: np.ndarray,
+    fp: FloatArray,
+    out: FloatArray,
+) -> float:
+    """Integrate the design model row by row; write each row's concentrations.
+
+    Between rows the inputs of the earlier row are held (as in the filter). At each
+    row the feed states take the row's feed and the activity the design value.
+    Returns the time reached [s]; ``x`` and ``u`` are updated in place.
+    """
+    n = x.shape[0]
+    n_v = ip[IP_N]
+    ws = workspace(n, n_v * ip[IP_S])
+    cov = np.zeros((n, n))
+    noise = np.zeros((n, n))
+    for k in range(times.shape[0]):
+        dt = times[k] - t
+        if dt > 0.0:
+            propagate_into(x, cov, u, dt, ip, fp, noise, ws)
+            for i in range(n):
+                for j in range(n):
+                    cov[i, j] = 0.0
+            t = times[k]
+        for c in range(u.shape[0]):
+            u[c] = inputs[k, c]
+        for s in range(feed_state.shape[0]):
+            if feed_state[s] >= 0:
+                x[feed_state[s]] = inputs[k, 1 + n_v + s]
+        if activity_state >= 0:
+            x[activity_state] = activity
+        for c in range(out.shape[1]):
+            out[k, c] = x[c]
+    return t
+
+
+class DesignTwin:
+    """The design model run alongside the filter: the dynamic expectation.
+
+    Fed the filter's estimate rows in time order (each row's inputs: flow,
+    temperatures, and the feed as estimated), it integrates the balances exactly
+    between rows with the design activity and returns every vessel's reactant
+    conversion, ``1 - C_A,i / C_A,feed``. It starts at the steady state of its
+    first row's inputs. An :data:`~estimator.alerts.ExpectedConversion`: the alert
+    engine calls it with each update's new rows.
+    """
+
+    def __init__(self, model: TrainModel) -> None:
+        self.model = model
+        lay = model.layout
+        self.x: FloatArray | None = None
+        self.t = -np.inf
+        self.u = model.nominal_inputs()
+        self._feed_state = np.array(lay.feed, dtype=np.int64)
+        self._activity = float(model.config.estimator.design_activity)
+
+    def __call__(self, estimates: EstimateBatch) -> FloatArray:
+        """Return the expected conversion of each vessel at each row [-], shape (k, N)."""
+        return self.run(estimates.time, estimates.inputs)
+
+    def run(self, times: FloatArray, inputs: FloatArray) -> FloatArray:
+        """Advance through rows (times [s], inputs (k, 1 + N + S) SI); conversions (k, N)."""
+        model, lay = self.model, self.model.layout
+        times = np.ascontiguousarray(times, dtype=np.float64)
+        inputs = np.ascontiguousarray(inputs, dtype=np.float64).reshape(len(times), -1)
+        keep = times > self.t  # rows already passed are not run again
+        times, inputs = times[keep], inputs[keep]
+        n_v, n_s = lay.n_vessels, lay.n_species
+        out = np.full((int(keep.size), n_v), np.nan)
+        if len(times) == 0:
+            return out
+        if self.x is None:
+            self.x = model.steady_state(inputs[0], activity=self._activity)
+            self.t = float(times[0])
+            self.u = inputs[0].copy()
+        conc = np.empty((len(times), lay.n_concentrations))
+        self.t = _twin_run(
+            self.x, self.t, self.u, times, inputs, self._feed_state,
+            lay.activity, self._activity, model.ip, model.fp, conc,
+        )  # fmt: skip
+        ia = int(model.ip[IP_REACTANT])
+        c_a = conc.reshape(len(times), n_v, n_s)[:, :, ia]
+        feed_a = inputs[:, 1 + n_v + ia][:, None]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out[keep] = np.where(feed_a > 0.0, 1.0 - c_a / feed_a, 0.0)
+        return out
+
+    def state_dict(self) -> dict[str, Any]:
+        """Return the twin's state as JSON-safe builtins (for checkpoints)."""
+        return {
+            "x": None if self.x is None else self.x.tolist(),
+            "t": self.t if np.isfinite(self.t) else None,
+            "u": self.u.tolist(),
+        }
+
+    def load(self, data: dict[str, Any]) -> None:
+        """Resume from :meth:`state_dict` output (of a twin of the same train)."""
+        x = data["x"]
+        self.x = None if x is None else np.array(x, dtype=np.float64)
+        if self.x is not None and self.x.shape != (self.model.layout.n,):
+            raise ValueError("design twin state of another state layout")
+        self.t = -np.inf if data["t"] is None else float(data["t"])
+        self.u = np.array(data["u"], dtype=np.float64)

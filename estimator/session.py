@@ -174,6 +174,10 @@ class TrainSession:
         self.config = config
         self.alert_engine = AlertEngine(config) if alerts else None
         self.model = TrainModel.from_config(config)
+        # Estimates and instrument activity not yet judged by the alert rules (they
+        # run once per alerts.evaluate_every of plant time; see _judge).
+        self._held_rows: EstimateBatch | None = None
+        self._held_health: list[HealthInput] = []
         self.journal = journal
         self.filter = CascadeFilter(
             self.model,
@@ -204,8 +208,15 @@ class TrainSession:
         arrays["format"] = np.array(_CHECKPOINT_FORMAT)
         arrays["config"] = np.array(_fingerprint(self.config))
         if self.alert_engine is not None:
-            state = json.dumps(self.alert_engine.state_dict()).encode()
-            arrays["alerts"] = np.frombuffer(state, dtype=np.uint8)
+            state = self.alert_engine.state_dict()
+            held = self._held_rows
+            state["held"] = {
+                "rows": None
+                if held is None
+                else {name: getattr(held, name).tolist() for name in _FIELDS},
+                "health": [h.to_dict() for h in self._held_health],
+            }
+            arrays["alerts"] = np.frombuffer(json.dumps(state).encode(), dtype=np.uint8)
         # Uncompressed: a service checkpoints inside a request, and zlib would cost
         # more time than the bytes it saves are worth.
         np.savez(buffer, **arrays)  # type: ignore[arg-type]  # stub types kwds as bool
@@ -251,7 +262,21 @@ class TrainSession:
         session.filter.load_state(arrays)
         if alerts is not None:
             state = json.loads(np.asarray(alerts, dtype=np.uint8).tobytes().decode())
+            held = state.pop("held", None)
             session.alert_engine = AlertEngine.from_state_dict(config, state)
+            if held is not None:
+                rows = held["rows"]
+                if rows is not None:
+                    empty = session._no_rows()
+                    session._held_rows = EstimateBatch(
+                        **{
+                            name: np.array(rows[name], dtype=np.float64).reshape(
+                                (-1, *getattr(empty, name).shape[1:])
+                            )
+                            for name in _FIELDS
+                        }
+                    )
+                session._held_health = [HealthInput.from_dict(h) for h in held["health"]]
         return session
 
     @property
@@ -320,8 +345,65 @@ class TrainSession:
                 self.tags[c] if 0 <= c < len(self.tags) else "" for c in code.tolist()
             ]  # fmt: skip
             health = HealthInput.from_session(self, tags, times, v, output, si=True)
-            output.alerts = self.alert_engine.update(output.estimates, health)
+            output.alerts = self._judge(output.estimates, health)
         return output
+
+    def _judge(self, estimates: EstimateBatch, health: HealthInput) -> list[AlertEvent]:
+        """Hold new estimates for the alert rules; run them once an interval is over.
+
+        The rules run when the newest estimate lies in a later ``evaluate_every``
+        interval of plant time than their last run, over every estimate held (a
+        revision replaces the held rows it covers). Each row is judged at its own
+        time, so how readings were batched does not change the events.
+        """
+        held = self._held_rows
+        if len(estimates):
+            if held is None:
+                held = estimates
+            else:
+                start = float(estimates.time[0])
+                held = EstimateBatch.concat([held.take(held.time < start), estimates])
+        self._held_rows = held
+        self._held_health.append(health)
+        engine = self.alert_engine
+        assert engine is not None
+        every = self.config.alerts.evaluate_every
+        if held is None or len(held) == 0:
+            return []
+        last = engine.last_time
+        if every > 0.0 and last is not None:
+            if math.floor(float(held.time[-1]) / every) == math.floor(last / every):
+                return []
+        return self.flush_alerts()
+
+    def flush_alerts(self) -> list[AlertEvent]:
+        """Run the alert rules now over every held estimate; return the transitions.
+
+        Called by :meth:`ingest` once an interval is over, and at the end of an
+        archive (a replay) so the last estimates are judged too.
+        """
+        engine = self.alert_engine
+        if engine is None or (self._held_rows is None and not self._held_health):
+            return []
+        rows = self._held_rows
+        health = HealthInput.concat(self._held_health) if self._held_health else None
+        self._held_rows, self._held_health = None, []
+        return engine.update(rows if rows is not None else self._no_rows(), health)
+
+    def _no_rows(self) -> EstimateBatch:
+        """Return an empty estimate batch shaped for this train."""
+        lay = self.model.layout
+        n_v, n_s, n_u = lay.n_vessels, lay.n_species, self.model.n_inputs
+        shapes = {
+            "concentration": (0, n_v, n_s),
+            "concentration_std": (0, n_v, n_s),
+            "conversion": (0, n_v),
+            "conversion_std": (0, n_v),
+            "design_conversion": (0, n_v),
+            "feed": (0, n_s),
+            "inputs": (0, n_u),
+        }
+        return EstimateBatch(**{name: np.empty(shapes.get(name, (0,))) for name in _FIELDS})
 
     def _output(self, run: FilterRun) -> SessionOutput:
         model = self.model

@@ -934,6 +934,8 @@ class _Run:
                     progress.update(task, completed=batch.progress)
             while len(self.pool):
                 self._chunk(self.next_edge)
+            # The alert rules run once per interval of plant time: judge the last.
+            self.alert_log.add(self.session.flush_alerts())
         finally:
             if progress is not None:
                 progress.stop()

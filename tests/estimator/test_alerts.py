@@ -32,7 +32,14 @@ from estimator.simulate import LabSchedule, Profile, Scenario, simulate
 DEMO = "replay_data/wrenfield/train.toml"
 T0 = 1_772_409_600.0  # 2026-03-02T00:00Z
 MINUTE, HOUR, DAY = 60.0, 3600.0, 86400.0
-CONFIG = load_train_config(DEMO)
+# The rules' mechanics are checked on synthetic estimates that carry their design
+# conversion: the steady-state expectation reads it from them (the dynamic one,
+# the default, is checked on its own below).
+_LOADED = load_train_config(DEMO)
+_STEADY = _LOADED.alerts.conversion_shortfall.model_copy(update={"expectation": "steady"})
+CONFIG = _LOADED.model_copy(
+    update={"alerts": _LOADED.alerts.model_copy(update={"conversion_shortfall": _STEADY})}
+)
 VESSELS = [v.name for v in CONFIG.vessels]
 N = len(VESSELS)
 ACTIVE, ACKED = AlertState.ACTIVE_UNACKNOWLEDGED.value, AlertState.ACTIVE_ACKNOWLEDGED.value
@@ -580,7 +587,7 @@ def test_alerts_table_reads_units_and_rejects_inconsistent_bands():
 
 
 def test_the_demo_train_states_the_defaults():
-    assert CONFIG.alerts == type(CONFIG.alerts)()
+    assert _LOADED.alerts == type(_LOADED.alerts)()
 
 
 # The demo train, through the session (estimator.simulate)
@@ -717,3 +724,86 @@ def test_rule_windows_stay_bounded_at_one_reading_per_tag_per_second():
     # About 3 kB per minute of raw readings and NIS rows in the fold age (9 min),
     # plus 720 activity rows and the bins: far below the 2 h of raw rows (~1.3 MB).
     assert held[240] < 250_000
+
+
+def test_throughput_and_feed_steps_raise_no_shortfall_with_the_dynamic_expectation():
+    # Normal activity; the throughput up 25 % from 6 h to 12 h, the feed glucose down
+    # from 2,400 to 2,150 mol/m^3 at 16 h. The steady-state expectation jumps to the
+    # new steady state at each change and runs ahead of the vessels for hours: it
+    # raises shortfall warnings and high alerts on every vessel. The design model run
+    # through the same inputs moves as the vessels do: nothing.
+    q = CONFIG.feed.flow.nominal  # 12 m^3/h [m^3/s]
+    scenario = Scenario(
+        duration=DAY,
+        flow=Profile(((0.0, q), (6 * HOUR, q), (6 * HOUR, 1.25 * q), (12 * HOUR, 1.25 * q),
+                      (12 * HOUR, q))),
+        feed={"glucose": Profile(((0.0, 2400.0), (16 * HOUR, 2400.0), (16 * HOUR, 2150.0)))},
+        analyzer_period=PERIODS,
+        seed=3,
+    )  # fmt: skip
+
+    def shortfall_alerts(config: TrainConfig) -> list[AlertEvent]:
+        session = TrainSession(config)
+        sim = simulate(session.model, scenario)
+        tags, times, values = sim.columns()
+        tag_array = np.array(tags, dtype=object)
+        events: list[AlertEvent] = []
+        for start in np.arange(0.0, scenario.duration + 1.0, HOUR):
+            part = (sim.received >= start) & (sim.received < start + HOUR)
+            out = session.ingest(tag_array[part].tolist(), times[part], values[part], si=True)
+            events += out.alerts
+        events += session.flush_alerts()
+        return [e for e in events if e.rule.startswith("conversion_shortfall")]
+
+    assert _LOADED.alerts.conversion_shortfall.expectation == "dynamic"
+    assert shortfall_alerts(_LOADED) == []
+    steady = shortfall_alerts(CONFIG)
+    raised = {e.alert_id for e in steady if e.to_state == ACTIVE}
+    assert {f"conversion_shortfall_warning:{v}" for v in VESSELS} <= raised
+
+
+def test_rules_run_once_per_interval_and_a_checkpoint_keeps_what_they_have_not_judged():
+    # Readings every 3 s one at a time: the rules run once per 10 s of plant time
+    # (evaluate_every), and a checkpoint taken between runs carries the held
+    # estimates, so a restored session raises exactly the straight run's events.
+    scenario = Scenario(
+        duration=2 * HOUR,
+        step=3.0,
+        activity=Profile(((0.0, 1.0), (HOUR, 1.0), (HOUR, 0.6))),
+        analyzer_period={"FI-200": 3.0, "TI-201": 3.0, "TI-202": 3.0, "AI-200G": 120.0,
+                         "AI-203G": 240.0},
+        seed=5,
+    )  # fmt: skip
+    straight = TrainSession(_LOADED)
+    sim = simulate(straight.model, scenario)
+    tags, times, values = sim.columns()
+    order = np.argsort(sim.received, kind="stable")
+    runs = 0
+    engine = straight.alert_engine
+    assert engine is not None
+    original = engine.update
+
+    def counted(*args: Any, **kwargs: Any) -> list[AlertEvent]:
+        nonlocal runs
+        runs += 1
+        return original(*args, **kwargs)
+
+    engine.update = counted  # type: ignore[method-assign]
+    expected: list[AlertEvent] = []
+    for i in order.tolist():
+        expected += straight.ingest([tags[i]], times[i : i + 1], values[i : i + 1], si=True).alerts
+    expected += straight.flush_alerts()
+    assert [e.rule for e in expected if e.to_state == ACTIVE]  # the loss is alerted
+    assert runs <= scenario.duration / 10.0 + 2  # not once per reading (~7,300)
+
+    first = TrainSession(_LOADED)
+    got: list[AlertEvent] = []
+    half = len(order) // 2 + 1  # a reading mid-interval
+    for i in order[:half].tolist():
+        got += first.ingest([tags[i]], times[i : i + 1], values[i : i + 1], si=True).alerts
+    assert first._held_rows is not None and len(first._held_rows)
+    resumed = TrainSession.restore(_LOADED, first.checkpoint())
+    for i in order[half:].tolist():
+        got += resumed.ingest([tags[i]], times[i : i + 1], values[i : i + 1], si=True).alerts
+    got += resumed.flush_alerts()
+    assert [e.to_dict() for e in got] == [e.to_dict() for e in expected]

@@ -80,3 +80,74 @@ def test_no_reactant_in_feed_gives_zero_not_nan():
     u[0, 2] = 0.0
     x = design_conversion(model, u)
     assert x.tolist() == [[0.0]]
+
+
+# The dynamic expectation (DesignTwin) against an independent integration
+
+
+def _demo_balances(config):
+    """Mole balances of the demo train written out here, independently of estimator.model.
+
+    Unsteady CSTRs in series with reversible first-order A <=> B (the mole balance of
+    Fogler, *Elements of CRE*, 5th ed., ch. 1 and 5, with the accumulation term kept;
+    chapter numbers from memory):
+    dC_A,i/dt = (C_A,i-1 - C_A,i) q / V_i - r_i, dC_B,i/dt = (C_B,i-1 - C_B,i) q / V_i + r_i,
+    r_i = k(T_i) (C_A,i - C_B,i / K(T_i)), Arrhenius k and van 't Hoff K.
+    """
+    r_gas = 8.314462618
+    reaction = config.reaction
+    volumes = np.array([v.volume for v in config.vessels])
+
+    def rhs(_t, c, q, temperatures, feed_a, feed_b):
+        out = np.empty_like(c)
+        up_a, up_b = feed_a, feed_b
+        for i, volume in enumerate(volumes):
+            inv = 1.0 / temperatures[i] - 1.0 / reaction.T_ref
+            k = reaction.k_ref * np.exp(-reaction.activation_energy / r_gas * inv)
+            k_eq = reaction.equilibrium_constant_ref * np.exp(
+                -reaction.reaction_enthalpy / r_gas * inv
+            )
+            a, b = c[2 * i], c[2 * i + 1]
+            rate = k * (a - b / k_eq)
+            out[2 * i] = (up_a - a) * q / volume - rate
+            out[2 * i + 1] = (up_b - b) * q / volume + rate
+            up_a, up_b = a, b
+        return out
+
+    return rhs
+
+
+def test_design_twin_follows_steps_like_an_independent_radau_integration():
+    from scipy.integrate import solve_ivp
+
+    from estimator.config import load_train_config
+    from estimator.conversion import DesignTwin
+    from estimator.model import TrainModel
+
+    config = load_train_config("replay_data/wrenfield/train.toml")
+    model = TrainModel.from_config(config)
+    hour = 3600.0
+    times = np.arange(0.0, 8 * hour + 1.0, 300.0)
+    inputs = np.tile(model.nominal_inputs(), (len(times), 1))
+    inputs[times >= 2 * hour, 0] *= 1.3  # throughput up 30 %
+    inputs[times >= 3 * hour, 1] += 3.0  # R-201 3 K warmer
+    inputs[times >= 4 * hour, 4] = 2200.0  # feed glucose down (column 1 + N + 0)
+    inputs[times >= 6 * hour, 0] /= 1.3
+    got = DesignTwin(model).run(times, inputs)
+
+    rhs = _demo_balances(config)
+    c = model.steady_state(inputs[0])[: model.layout.n_concentrations]
+    expected = [1.0 - c[0::2] / inputs[0, 4]]
+    for k in range(1, len(times)):
+        u = inputs[k - 1]  # held from the earlier row, as the filter holds inputs
+        sol = solve_ivp(
+            rhs, (times[k - 1], times[k]), c, method="Radau", rtol=1e-11, atol=1e-9,
+            args=(u[0], u[1:4], u[4], u[5]),
+        )  # fmt: skip
+        c = sol.y[:, -1]
+        expected.append(1.0 - c[0::2] / inputs[k, 4])
+    np.testing.assert_allclose(got, np.array(expected), atol=1e-7)
+    # And it differs from the steady-state expectation while the vessels settle.
+    steady = design_conversion(model, inputs)
+    after_step = (times > 2 * hour) & (times < 2.5 * hour)
+    assert np.max(np.abs(got[after_step] - steady[after_step])) > 0.01
