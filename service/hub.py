@@ -429,7 +429,7 @@ class Hub:
             self.store.append_alert_events(runtime.train_id, out.alerts)
             if live:
                 self._announce(runtime, out.alerts)
-        if rows or out.alerts:
+        if out.alerts:  # an alert's snapshot changes only with its events
             _refresh_alerts(runtime)
         self.metrics.estimates.inc(len(rows))
 

@@ -493,6 +493,15 @@ def _guarded(method: Callable[_P, _R]) -> Callable[_P, _R]:
 # ---------------------------------------------------------------------------- store
 
 
+# The SQLite journal append, built once (a statement built per call costs more than
+# a single reading's insert).
+_SQLITE_APPEND = (
+    sqlite.insert(_Reading)
+    .on_conflict_do_nothing(index_elements=["train_id", "tag", "time"])
+    .returning(_Reading.id, _Reading.tag, _Reading.time)
+)
+
+
 class Store:
     """The service's database: SQLite file or PostgreSQL, one transaction per call.
 
@@ -838,9 +847,7 @@ class Store:
                     ).all()
                 else:
                     inserted = conn.execute(
-                        sqlite.insert(_Reading)
-                        .on_conflict_do_nothing(index_elements=["train_id", "tag", "time"])
-                        .returning(_Reading.id, _Reading.tag, _Reading.time),
+                        _SQLITE_APPEND,
                         [
                             {
                                 "train_id": train_id,
