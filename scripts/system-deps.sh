@@ -10,9 +10,10 @@
 set -euo pipefail
 
 # Space-separated Debian package names: postgresql for the store's tests (a
-# throwaway server is started by tests/service/conftest.py). Later suites add
-# chromium (browser tests).
-PACKAGES="postgresql"
+# throwaway server is started by tests/service/conftest.py); chromium for the
+# dashboard's browser tests (tests/web, driven by Playwright: never
+# `playwright install`, which downloads a browser of its own).
+PACKAGES="postgresql chromium"
 # The benchmarks' packages: wrk, the HTTP load generator of bench/bench_service.py.
 BENCH_PACKAGES="wrk"
 

@@ -82,6 +82,7 @@ def run_live_demo(
             name = r.json()["name"]
             if echo:
                 print(f"stagewatch live demo: train {name} fed the demo month at {speed:g}x")
+                print(f"  dashboard: {base}/   (asks for the key below)")
                 print(f"  API docs:  {base}/docs")
                 print(f"  key:       {key}   (admin; send as 'Authorization: Bearer <key>')")
                 print(f"  latest:    curl -H 'Authorization: Bearer {key}' "
