@@ -18,16 +18,21 @@ import csv
 import io
 import json
 import logging
+import math
 import time
 import tomllib
 from collections.abc import AsyncIterator, Iterator
 from contextlib import asynccontextmanager
+from pathlib import Path
 from typing import Annotated, Any, Literal
 
-from fastapi import FastAPI, Header, HTTPException, Query, Request, Response, status
+from fastapi import Depends, FastAPI, Header, HTTPException, Query, Request, Response, status
+from fastapi.encoders import jsonable_encoder
+from fastapi.exceptions import RequestValidationError
 from fastapi.openapi.utils import get_openapi
 from fastapi.responses import JSONResponse
 from fastapi.sse import EventSourceResponse, ServerSentEvent
+from fastapi.staticfiles import StaticFiles
 
 from estimator.alerts import Alert, AlertActionError
 from estimator.config import TrainConfig, parse_train_config
@@ -45,6 +50,7 @@ from service.hub import (
     alert_event_public,
     estimate_public,
 )
+from service.limits import BodySizeLimit, IngestRateLimiter
 from service.metrics import configure_logging
 from service.schemas import (
     AlertActionIn,
@@ -60,12 +66,15 @@ from service.schemas import (
     GatedPublic,
     IngestResult,
     ObservabilityPublic,
+    PlainText,
     PriorityName,
+    Problem,
     ReadingsIn,
     ShelveIn,
     TrainIn,
     TrainPublic,
     TrainsPublic,
+    document_text_problems,
 )
 from service.settings import Settings
 from service.store import Store, StoreUnavailable
@@ -73,10 +82,36 @@ from service.store import Store, StoreUnavailable
 log = logging.getLogger("stagewatch.app")
 
 API = "/api/v1"
+WEB_DIR = Path(__file__).parent / "web"
+"""The dashboard's static files, served at ``/``."""
 NOT_SAFETY = (
     "stagewatch is a monitoring aid, not a safety system: follow site procedures, "
     "local codes and licensed engineering practice."
 )
+
+_REFUSALS: dict[int, str] = {
+    400: "The body could not be read as JSON text (not UTF-8, say).",
+    401: "No API key, or an unknown or revoked one.",
+    403: "The key's role is below the one this route needs.",
+    404: "No such train, alert or estimate.",
+    409: "Conflicts with the current state (the train exists; the alert action does not apply).",
+    413: "Request body over max_body_bytes, or more readings than max_batch.",
+    429: "This key's ingest rate limit (ingest_rate_limit) is used up.",
+    503: "Storage unavailable: nothing was changed.",
+}
+_RETRY_AFTER = {"Retry-After": {"description": "Seconds to wait", "schema": {"type": "string"}}}
+_KEYED = (401, 403, 503)  # every keyed route: the key look-up itself reads the store
+
+
+def _refusals(*codes: int) -> dict[int | str, dict[str, Any]]:
+    """OpenAPI entries for the refusals a route can give: a Problem body with ``detail``."""
+    out: dict[int | str, dict[str, Any]] = {}
+    for code in (*_KEYED, *codes):
+        entry: dict[str, Any] = {"model": Problem, "description": _REFUSALS[code]}
+        if code in (429, 503):
+            entry["headers"] = _RETRY_AFTER
+        out[code] = entry
+    return out
 
 
 def create_app(settings: Settings | None = None, *, store: Store | None = None) -> FastAPI:
@@ -117,6 +152,12 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
         ),
         lifespan=lifespan,
     )
+    app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
+    limiter = (
+        None
+        if settings.ingest_rate_limit is None
+        else IngestRateLimiter.for_batches(settings.ingest_rate_limit, settings.max_batch)
+    )
 
     @app.exception_handler(UnknownTrain)
     async def unknown_train(_: Request, exc: UnknownTrain) -> JSONResponse:
@@ -135,6 +176,13 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
         detail = [{"loc": ["body", "until"], "msg": str(exc), "type": "value_error"}]
         return JSONResponse({"detail": detail}, status_code=422)
 
+    @app.exception_handler(RequestValidationError)
+    async def invalid_request(_: Request, exc: RequestValidationError) -> JSONResponse:
+        # The framework's own answer repeats each bad input and cannot write NaN,
+        # infinity or a lone surrogate: it failed with a 500 instead of this 422.
+        detail = _json_safe(jsonable_encoder(exc.errors()))
+        return _AsciiJSONResponse({"detail": detail}, status_code=422)
+
     @app.exception_handler(StoreUnavailable)
     async def store_unavailable(_: Request, exc: StoreUnavailable) -> JSONResponse:
         return JSONResponse(
@@ -143,7 +191,7 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
             headers={"Retry-After": "5"},
         )
 
-    @app.get("/metrics", tags=["operations"], response_class=Response)
+    @app.get("/metrics", tags=["operations"], response_class=Response, responses=_refusals())
     def get_metrics(request: Request, _: ReadAccess) -> Response:
         """Prometheus text: readings by outcome, estimates, ingest latency, estimate age."""
         from prometheus_client import CONTENT_TYPE_LATEST, generate_latest
@@ -156,7 +204,7 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
         """Answer while the process is up."""
         return {"status": "ok"}
 
-    @app.get("/readyz", tags=["operations"])
+    @app.get("/readyz", tags=["operations"], responses={503: {"description": "Still starting"}})
     def get_ready(request: Request) -> JSONResponse:
         """Answer 200 once every train is loaded."""
         hub: Hub | None = getattr(request.app.state, "hub", None)
@@ -166,7 +214,9 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
             status_code=200 if ready else 503,
         )
 
-    @app.post(f"{API}/trains", status_code=201, tags=["trains"])
+    @app.post(
+        f"{API}/trains", status_code=201, tags=["trains"], responses=_refusals(400, 409, 413)
+    )
     def create_train(body: TrainIn, request: Request, _: AdminAccess) -> TrainPublic:
         """Register a train from its TOML text or JSON document."""
         config, source = _parse_train(body)
@@ -175,38 +225,55 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
             raise HTTPException(409, f"a train named {config.name!r} exists; PUT to change it")
         return _train_public(hub.create(config, source))
 
-    @app.get(f"{API}/trains", tags=["trains"])
+    @app.get(f"{API}/trains", tags=["trains"], responses=_refusals())
     def list_trains(request: Request, _: ReadAccess) -> TrainsPublic:
         """List every running train."""
         data = [_train_public(r) for r in _hub(request).trains.values()]
         return TrainsPublic(data=data, count=len(data))
 
-    @app.get(f"{API}/trains/{{name}}", tags=["trains"])
+    @app.get(f"{API}/trains/{{name}}", tags=["trains"], responses=_refusals(404))
     def read_train(name: str, request: Request, _: ReadAccess) -> TrainPublic:
         """Return one train's description and state."""
         return _train_public(_hub(request).get(name))
 
-    @app.put(f"{API}/trains/{{name}}", tags=["trains"])
+    @app.put(f"{API}/trains/{{name}}", tags=["trains"], responses=_refusals(400, 404, 413))
     def update_train(name: str, body: TrainIn, request: Request, _: AdminAccess) -> TrainPublic:
         """Change a train's description: a new version, history kept."""
         config, source = _parse_train(body)
         if config.name != name:
-            raise HTTPException(422, f"train.name is {config.name!r}, the path says {name!r}")
+            msg = f"train.name is {config.name!r}, the path says {name!r}"
+            raise HTTPException(422, [{"loc": ["path", "name"], "msg": msg, "type": "value_error"}])
         return _train_public(_hub(request).update(name, config, source))
 
-    @app.delete(f"{API}/trains/{{name}}", status_code=204, tags=["trains"])
+    @app.delete(
+        f"{API}/trains/{{name}}", status_code=204, tags=["trains"], responses=_refusals(404)
+    )
     def retire_train(name: str, request: Request, _: AdminAccess) -> Response:
         """Stop estimating a train; its history stays."""
         _hub(request).retire(name)
         return Response(status_code=204)
 
-    @app.post(f"{API}/trains/{{name}}/readings", tags=["readings"])
+    @app.post(
+        f"{API}/trains/{{name}}/readings",
+        tags=["readings"],
+        responses=_refusals(400, 404, 413, 429),
+    )
     def post_readings(
-        name: str, body: ReadingsIn, request: Request, _: IngestAccess
+        name: str, body: ReadingsIn, request: Request, caller: IngestAccess
     ) -> IngestResult:
         """Post a batch of readings (any order); each refused one comes back with its reason."""
         if len(body.readings) > settings.max_batch:
             raise HTTPException(413, f"at most {settings.max_batch} readings per request")
+        if limiter is not None:
+            who = caller.name if caller.key_id is None else caller.key_id
+            wait = limiter.take(who, len(body.readings))
+            if wait > 0:
+                raise HTTPException(
+                    429,
+                    f"ingest rate limit of {limiter.rate:g} readings/s for key {caller.name!r} "
+                    f"used up; retry in {wait:.1f} s",
+                    headers={"Retry-After": str(max(1, math.ceil(wait)))},
+                )
         readings = body.readings
         hub = _hub(request)
         with hub.metrics.ingest_seconds.time():
@@ -219,7 +286,9 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
                 now=time.time(),
             )
 
-    @app.get(f"{API}/trains/{{name}}/estimates/latest", tags=["estimates"])
+    @app.get(
+        f"{API}/trains/{{name}}/estimates/latest", tags=["estimates"], responses=_refusals(404)
+    )
     def read_latest(name: str, request: Request, _: ReadAccess) -> EstimatePublic:
         """Return the newest estimate."""
         runtime = _hub(request).get(name)
@@ -227,14 +296,28 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
             raise HTTPException(404, "no estimate yet: the train has not had its inputs")
         return EstimatePublic.model_validate(estimate_public(runtime.config, runtime.latest))
 
-    @app.get(f"{API}/trains/{{name}}/estimates", tags=["estimates"], response_model=None)
+    @app.get(
+        f"{API}/trains/{{name}}/estimates",
+        tags=["estimates"],
+        response_model=None,
+        responses={
+            200: {
+                "model": EstimatesPublic,
+                "content": {"text/csv": {"schema": {"type": "string"}}},
+            },
+            **_refusals(404),
+        },
+    )
     def read_estimates(
         name: str,
         request: Request,
         _: ReadAccess,
         start: Annotated[float | None, Query(description="Epoch seconds [s]")] = None,
         end: Annotated[float | None, Query(description="Epoch seconds [s]")] = None,
-        every: Annotated[float | None, Query(gt=0, description="Downsample interval [s]")] = None,
+        every: Annotated[
+            float | None,
+            Query(ge=0.001, allow_inf_nan=False, description="Downsample interval [s]"),
+        ] = None,
         format: Literal["json", "csv"] = "json",
     ) -> EstimatesPublic | Response:
         """Return estimates over a time range, optionally one per interval, as JSON or CSV."""
@@ -247,7 +330,7 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
         data = [EstimatePublic.model_validate(estimate_public(runtime.config, r)) for r in rows]
         return EstimatesPublic(data=data, count=len(data))
 
-    @app.get(f"{API}/trains/{{name}}/gated", tags=["estimates"])
+    @app.get(f"{API}/trains/{{name}}/gated", tags=["estimates"], responses=_refusals(404))
     def read_gated(
         name: str,
         request: Request,
@@ -261,7 +344,7 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
         data = [GatedPublic.model_validate(r) for r in rows]
         return GatedListPublic(data=data, count=len(data))
 
-    @app.get(f"{API}/trains/{{name}}/observability", tags=["trains"])
+    @app.get(f"{API}/trains/{{name}}/observability", tags=["trains"], responses=_refusals(404))
     def read_observability(name: str, request: Request, _: ReadAccess) -> ObservabilityPublic:
         """Report which states the measurements determine, and what to add if not."""
         runtime = _hub(request).get(name)
@@ -275,7 +358,7 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
             message=report.message(),
         )
 
-    @app.get(f"{API}/trains/{{name}}/alerts", tags=["alerts"])
+    @app.get(f"{API}/trains/{{name}}/alerts", tags=["alerts"], responses=_refusals(404))
     def list_alerts(
         name: str,
         request: Request,
@@ -300,14 +383,14 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
         ]
         return AlertsPublic(data=data, count=len(data))
 
-    @app.get(f"{API}/trains/{{name}}/alerts/events", tags=["alerts"])
+    @app.get(f"{API}/trains/{{name}}/alerts/events", tags=["alerts"], responses=_refusals(404))
     def read_alert_events(
         name: str,
         request: Request,
         _: ReadAccess,
         start: Annotated[float | None, Query(description="Epoch seconds [s]")] = None,
         end: Annotated[float | None, Query(description="Epoch seconds [s]")] = None,
-        alert_id: Annotated[str | None, Query(description="Only this alert's events")] = None,
+        alert_id: Annotated[PlainText | None, Query(description="Only this alert's events")] = None,
     ) -> AlertEventsPublic:
         """Return the log of alert transitions with start <= time < end, in log order."""
         hub = _hub(request)
@@ -333,36 +416,37 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
         )
 
     alert_path = f"{API}/trains/{{name}}/alerts/{{alert_id:path}}"
+    alert_refusals = _refusals(400, 404, 409, 413)
 
-    @app.post(f"{alert_path}/acknowledge", tags=["alerts"])
+    @app.post(f"{alert_path}/acknowledge", tags=["alerts"], responses=alert_refusals)
     def acknowledge_alert(
         name: str, alert_id: str, body: AlertActionIn, request: Request, caller: IngestAccess
     ) -> AlertActionResult:
         """Acknowledge an alert (role ingest); 409 when it has nothing to acknowledge."""
         return act(request, name, alert_id, "acknowledge", caller, body.reason)
 
-    @app.post(f"{alert_path}/shelve", tags=["alerts"])
+    @app.post(f"{alert_path}/shelve", tags=["alerts"], responses=alert_refusals)
     def shelve_alert(
         name: str, alert_id: str, body: ShelveIn, request: Request, caller: IngestAccess
     ) -> AlertActionResult:
         """Shelve an alert until a time within alerts.max_shelve (role ingest); 422 beyond."""
         return act(request, name, alert_id, "shelve", caller, body.reason, body.until)
 
-    @app.post(f"{alert_path}/unshelve", tags=["alerts"])
+    @app.post(f"{alert_path}/unshelve", tags=["alerts"], responses=alert_refusals)
     def unshelve_alert(
         name: str, alert_id: str, body: AlertActionIn, request: Request, caller: IngestAccess
     ) -> AlertActionResult:
         """End a shelving early (role ingest); the alert takes the state its condition gives."""
         return act(request, name, alert_id, "unshelve", caller, body.reason)
 
-    @app.post(f"{alert_path}/remove-from-service", tags=["alerts"])
+    @app.post(f"{alert_path}/remove-from-service", tags=["alerts"], responses=alert_refusals)
     def remove_alert_from_service(
         name: str, alert_id: str, body: AlertActionIn, request: Request, caller: AdminAccess
     ) -> AlertActionResult:
         """Take an alert out of service until returned (role admin: a change of the system)."""
         return act(request, name, alert_id, "remove_from_service", caller, body.reason)
 
-    @app.post(f"{alert_path}/return-to-service", tags=["alerts"])
+    @app.post(f"{alert_path}/return-to-service", tags=["alerts"], responses=alert_refusals)
     def return_alert_to_service(
         name: str, alert_id: str, body: AlertActionIn, request: Request, caller: AdminAccess
     ) -> AlertActionResult:
@@ -370,13 +454,16 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
         return act(request, name, alert_id, "return_to_service", caller, body.reason)
 
     @app.get(
-        f"{API}/trains/{{name}}/stream", tags=["estimates"], response_class=EventSourceResponse
+        f"{API}/trains/{{name}}/stream",
+        tags=["estimates"],
+        response_class=EventSourceResponse,
+        responses=_refusals(404),
     )
     async def stream_estimates(
         name: str,
         request: Request,
         _: ReadAccess,
-        last_event_id: Annotated[str | None, Header()] = None,
+        resume: Annotated[float | None, Depends(_stream_resume)],
     ) -> AsyncIterator[ServerSentEvent]:
         """Stream live estimates and alert events (SSE); resume estimates with Last-Event-ID."""
         hub = _hub(request)
@@ -384,11 +471,8 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
         queue = hub.subscribe(name)
         try:
             sent = -float("inf")
-            if last_event_id is not None:
-                try:
-                    sent = float(last_event_id)
-                except ValueError:
-                    raise HTTPException(422, "Last-Event-ID must be an estimate time") from None
+            if resume is not None:
+                sent = resume
                 await asyncio.to_thread(hub.settle, name)
                 missed = await asyncio.to_thread(
                     hub.store.read_estimates, runtime.train_id, sent, None, None
@@ -402,7 +486,7 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
                 if kind == "alert":
                     # No id: a client's Last-Event-ID stays the last estimate's time.
                     yield ServerSentEvent(data=item, event="alert")
-                elif item["t"] > sent or last_event_id is None:
+                elif item["t"] > sent or resume is None:
                     yield _event(runtime, item)
                     sent = max(sent, item["t"])
         finally:
@@ -413,7 +497,8 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
 
         FastAPI describes a server-sent-event stream with ``itemSchema`` (from the
         OpenAPI 3.2 drafts), which 3.1 validators refuse; the stream is described
-        as text with the event shape in words instead.
+        as text with the event shape in words instead. It also gives the stream's
+        refusals the stream's media type; they are JSON like every other refusal.
         """
         if app.openapi_schema is None:
             spec = get_openapi(
@@ -424,8 +509,12 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
             )
             for path in spec.get("paths", {}).values():
                 for operation in path.values():
-                    for response in operation.get("responses", {}).values():
-                        media = response.get("content", {}).get("text/event-stream")
+                    for code, response in operation.get("responses", {}).items():
+                        content = response.get("content", {})
+                        if code != "200" and "text/event-stream" in content:
+                            content["application/json"] = content.pop("text/event-stream")
+                            continue
+                        media = content.get("text/event-stream")
                         if media is not None and "itemSchema" in media:
                             del media["itemSchema"]
                             media["schema"] = {
@@ -439,7 +528,53 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
         return app.openapi_schema
 
     app.openapi = openapi_31  # type: ignore[method-assign]
+    # Last, so that every route above is matched before the catch-all mount.
+    app.mount("/", StaticFiles(directory=WEB_DIR, html=True), name="dashboard")
     return app
+
+
+def _stream_resume(
+    name: str,
+    request: Request,
+    last_event_id: Annotated[str | None, Header()] = None,
+) -> float | None:
+    """Check the train and Last-Event-ID before a stream starts; its time [s] or None.
+
+    A generator's own code runs only once the 200 has gone out, too late to
+    answer 404 or 422.
+    """
+    _hub(request).get(name)
+    if last_event_id is None:
+        return None
+    try:
+        resume = float(last_event_id)
+    except ValueError:
+        resume = math.nan
+    if not math.isfinite(resume):
+        msg = f"must be the time of an estimate (epoch seconds), got {last_event_id!r}"
+        loc = ["header", "last-event-id"]
+        raise HTTPException(422, [{"loc": loc, "msg": msg, "type": "value_error"}])
+    return resume
+
+
+class _AsciiJSONResponse(JSONResponse):
+    """JSON with every non-ASCII character escaped, so any string can be written."""
+
+    def render(self, content: Any) -> bytes:
+        """Write ``content`` as ASCII JSON, escaping every other character (lone surrogates too)."""
+        text = json.dumps(content, ensure_ascii=True, allow_nan=False, separators=(",", ":"))
+        return text.encode("ascii")
+
+
+def _json_safe(value: Any) -> Any:
+    """Replace non-finite numbers (which JSON cannot hold) by their names, at any depth."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return repr(value)
+    if isinstance(value, dict):
+        return {k: _json_safe(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_json_safe(v) for v in value]
+    return value
 
 
 def _event(runtime: Runtime, row: dict[str, Any]) -> ServerSentEvent:
@@ -460,29 +595,45 @@ def _hub(request: Request) -> Hub:
 def _open_store(settings: Settings) -> Store:
     url = settings.database_url
     if url.startswith("sqlite:///"):
-        from pathlib import Path
-
         Path(url.removeprefix("sqlite:///")).parent.mkdir(parents=True, exist_ok=True)
     db = Store(url)
-    db.create_all()
+    from service.migrations import prepare_schema  # Alembic, only when a store opens
+
+    try:
+        prepare_schema(db)
+    except BaseException:
+        db.close()
+        raise
     return db
 
 
 def _parse_train(body: TrainIn) -> tuple[TrainConfig, str]:
     """Validate a posted TOML text or JSON document (422 with every problem)."""
     if (body.toml is None) == (body.config is None):
-        raise HTTPException(422, "give the train as either 'toml' text or a 'config' document")
-    try:
-        if body.toml is not None:
-            try:
-                data = tomllib.loads(body.toml)
-            except tomllib.TOMLDecodeError as exc:
-                raise HTTPException(422, [{"loc": ["body", "toml"], "msg": str(exc)}]) from None
-            return parse_train_config(data, source="posted TOML"), body.toml
+        msg = "give the train as either 'toml' text or a 'config' document"
+        raise HTTPException(422, [{"loc": ["body"], "msg": msg, "type": "value_error"}])
+    if body.toml is not None:
+        try:
+            data: dict[str, Any] = tomllib.loads(body.toml)
+        except tomllib.TOMLDecodeError as exc:
+            problem = {"loc": ["body", "toml"], "msg": str(exc), "type": "value_error"}
+            raise HTTPException(422, [problem]) from None
+        where, source, text = "toml", "posted TOML", body.toml
+    else:
         assert body.config is not None
-        return parse_train_config(body.config, source="posted config"), json.dumps(body.config)
+        data, where, source, text = body.config, "config", "posted config", json.dumps(body.config)
+    # TOML escapes and JSON documents can carry text no database stores (NUL).
+    unstorable = document_text_problems(data, ("body", where))
+    if unstorable:
+        detail = [{"loc": list(loc), "msg": msg, "type": "value_error"} for loc, msg in unstorable]
+        raise HTTPException(422, detail)
+    try:
+        return parse_train_config(data, source=source), text
     except ConfigError as exc:
-        detail = [{"loc": ["body", *p.key.split(".")], "msg": p.reason} for p in exc.problems]
+        detail = [
+            {"loc": ["body", *p.key.split(".")], "msg": p.reason, "type": "value_error"}
+            for p in exc.problems
+        ]
         raise HTTPException(status.HTTP_422_UNPROCESSABLE_CONTENT, detail) from None
 
 

@@ -487,8 +487,12 @@ def serve(
     import uvicorn
 
     from service.app import _open_store, create_app
+    from service.migrations import SchemaError
 
-    store = _open_store(settings)
+    try:
+        store = _open_store(settings)
+    except SchemaError as exc:
+        raise _fail(f"error: {exc}") from None
     keys = any(k.revoked_at is None for k in store.list_api_keys())
     try:
         check_listen_safety(settings, keys_configured=keys)
@@ -597,6 +601,15 @@ def _add_keys_commands() -> None:
 
 
 _add_keys_commands()
+
+
+def _add_db_commands() -> None:
+    from service.db_cli import db_app
+
+    app.add_typer(db_app, name="db", help="Show the database schema's revision, or upgrade it.")
+
+
+_add_db_commands()
 
 
 def main() -> None:

@@ -64,6 +64,9 @@ def _fail(message: str, code: int = EXIT_INPUT_ERROR) -> typer.Exit:
 def _open_store() -> Iterator[KeyStore]:
     """Open the service's store from the settings, creating its tables if new.
 
+    An existing database must have this version's schema (see
+    :func:`service.migrations.prepare_schema`).
+
     Yields
     ------
     KeyStore
@@ -74,8 +77,9 @@ def _open_store() -> Iterator[KeyStore]:
     typer.Exit
         Status 2 for invalid settings, 1 when the database cannot be opened.
     """
-    from sqlalchemy.exc import ArgumentError
+    from sqlalchemy.exc import ArgumentError, SQLAlchemyError
 
+    from service.migrations import SchemaError, prepare_schema
     from service.settings import SettingsError, load_settings
     from service.store import Store, StoreUnavailable
 
@@ -92,8 +96,8 @@ def _open_store() -> Iterator[KeyStore]:
     try:
         if url.startswith("sqlite:///"):
             Path(url.removeprefix("sqlite:///")).parent.mkdir(parents=True, exist_ok=True)
-        store.create_all()
-    except (OSError, StoreUnavailable) as exc:
+        prepare_schema(store)
+    except (OSError, SQLAlchemyError, SchemaError, StoreUnavailable) as exc:
         store.close()
         raise _fail(f"cannot open the database {shown}: {_one_line(exc)}", EXIT_FAILURE) from None
     try:

@@ -11,7 +11,7 @@ import math
 from datetime import datetime
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, BeforeValidator, ConfigDict, Field
+from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Field
 
 _STRICT = ConfigDict(strict=True, extra="forbid")
 
@@ -28,14 +28,90 @@ def _epoch_seconds(value: Any) -> Any:
         return stamp.timestamp()
     if isinstance(value, bool):
         raise ValueError("a time must be epoch seconds or ISO 8601 text")
+    if isinstance(value, float) and not math.isfinite(value):
+        raise ValueError(f"a time must be a finite number of epoch seconds, got {value!r}")
     return value
 
+
+LAST_TIME = 253402300799.0
+"""9999-12-31T23:59:59Z in epoch seconds [s]: the last time a timestamp may name."""
 
 Time = Annotated[
     float,
     BeforeValidator(_epoch_seconds),
-    Field(description="Epoch seconds, or ISO 8601 text with an offset [s]"),
+    Field(
+        ge=0.0,
+        le=LAST_TIME,
+        allow_inf_nan=False,
+        description="Epoch seconds, or ISO 8601 text with an offset, 1970 to 9999 [s]",
+    ),
 ]
+
+
+def text_problem(value: str) -> str | None:
+    """Say why no database could store ``value`` as text, or None when it can.
+
+    PostgreSQL refuses the NUL character in text, and neither backend can encode
+    a lone UTF-16 surrogate (U+D800 to U+DFFF, which a JSON escape can produce)
+    as UTF-8.
+    """
+    if "\x00" in value:
+        return "must not contain the NUL character (U+0000)"
+    if not value.isascii():
+        try:
+            value.encode("utf-8")
+        except UnicodeEncodeError:
+            return "must be valid Unicode: it holds a lone surrogate (U+D800 to U+DFFF)"
+    return None
+
+
+def _plain_text(value: str) -> str:
+    """Refuse text with NUL or lone surrogates (see :func:`text_problem`)."""
+    problem = text_problem(value)
+    if problem is not None:
+        raise ValueError(problem)
+    return value
+
+
+PlainText = Annotated[str, AfterValidator(_plain_text)]
+"""Text a database can store: no NUL character, no lone surrogate."""
+
+
+def document_text_problems(
+    value: Any, loc: tuple[str | int, ...]
+) -> list[tuple[tuple[str | int, ...], str]]:
+    """Find every key or string in a nested document that fails :func:`text_problem`.
+
+    Parameters
+    ----------
+    value : Any
+        A parsed JSON or TOML document (dicts, lists, strings, numbers).
+    loc : tuple
+        Where the document sits in the request, e.g. ``("body", "config")``.
+
+    Returns
+    -------
+    list of (loc, reason)
+        One entry per offending key or string, with its full location.
+    """
+    found: list[tuple[tuple[str | int, ...], str]] = []
+    if isinstance(value, str):
+        problem = text_problem(value)
+        if problem is not None:
+            found.append((loc, problem))
+    elif isinstance(value, dict):
+        for key, item in value.items():
+            key_text = str(key)
+            problem = text_problem(key_text)
+            if problem is not None:
+                shown = key_text.encode("utf-8", "backslashreplace").decode()
+                found.append(((*loc, shown), problem))
+                continue
+            found.extend(document_text_problems(item, (*loc, key_text)))
+    elif isinstance(value, list):
+        for i, item in enumerate(value):
+            found.extend(document_text_problems(item, (*loc, i)))
+    return found
 
 
 def _number(value: Any) -> Any:
@@ -52,7 +128,7 @@ class ReadingIn(BaseModel):
 
     model_config = _STRICT
 
-    tag: Annotated[str, Field(min_length=1, max_length=256)]
+    tag: Annotated[PlainText, Field(min_length=1, max_length=256)]
     time: Time
     value: Annotated[
         float, BeforeValidator(_number), Field(description="In the tag's declared unit")
@@ -91,7 +167,7 @@ class TrainIn(BaseModel):
 
     model_config = ConfigDict(extra="forbid")
 
-    toml: str | None = None
+    toml: PlainText | None = None
     config: dict[str, Any] | None = None
 
 
@@ -256,7 +332,7 @@ class AlertEventsPublic(BaseModel):
 
 
 Reason = Annotated[
-    str,
+    PlainText,
     Field(min_length=1, max_length=2000, description="Why, in the operator's words (logged)"),
 ]
 

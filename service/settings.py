@@ -86,6 +86,10 @@ class Settings(BaseSettings):
     future_tolerance : float
         Readings stamped more than this far ahead of the server's clock are
         refused [s].
+    estimate_every : float or None
+        Store one estimate row per this interval of plant time [s] (the last of
+        each interval), None for every row. The latest estimate and the live
+        stream carry every row; history reads downsample further with ``every``.
     event_memory : float
         Span of each train's in-memory event log [s of plant time] (at least its
         largest dead time plus two snapshot intervals). Older readings stay in the
@@ -99,7 +103,11 @@ class Settings(BaseSettings):
     max_batch : int
         Most readings accepted in one request.
     max_body_bytes : int
-        Largest request body accepted [bytes].
+        Largest request body accepted [bytes]; a larger one is answered 413.
+    ingest_rate_limit : float or None
+        Readings per second each API key may post on average [1/s], with bursts
+        of 10 s worth (at least one full batch); beyond it ingest answers 429
+        with ``Retry-After``. None (the default): no limit.
     log_json : bool
         Write logs as JSON lines (True) or as text for a terminal (False).
     bootstrap_key : SecretStr or None
@@ -133,23 +141,38 @@ class Settings(BaseSettings):
     checkpoint_every: float = Field(
         default=300.0, gt=0.0, description="Checkpoint interval [s of plant time]."
     )
-    retention_readings: float | None = Field(
-        default=None, gt=0.0, description="Keep readings this long [s]; None: for ever."
+    estimate_every: float | None = Field(
+        default=10.0,
+        gt=0.0,
+        description=(
+            "Store one estimate row per this interval of plant time [s], the last of "
+            "each; None stores every row. The latest estimate and the live stream "
+            "carry every row."
+        ),
     )
-    retention_estimates: float | None = Field(
     event_memory: float = Field(
-        default=600.0,
+        default=300.0,
         gt=0.0,
         description=(
             "Span of each train's in-memory event log [s of plant time]; a late reading "
             "sampled before it reads older readings back from the journal."
         ),
     )
+    retention_readings: float | None = Field(
+        default=None, gt=0.0, description="Keep readings this long [s]; None: for ever."
+    )
+    retention_estimates: float | None = Field(
         default=None, gt=0.0, description="Keep estimates this long [s]; None: for ever."
     )
     max_batch: int = Field(default=10_000, ge=1, description="Most readings in one request.")
     max_body_bytes: int = Field(
         default=4_000_000, ge=1, description="Largest request body [bytes]."
+    )
+    ingest_rate_limit: float | None = Field(
+        default=None,
+        gt=0.0,
+        allow_inf_nan=False,
+        description="Readings per second each API key may post [1/s]; None: no limit.",
     )
     log_json: bool = Field(default=True, description="Log JSON lines rather than text.")
     bootstrap_key: SecretStr | None = Field(

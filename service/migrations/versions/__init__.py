@@ -1,0 +1,1 @@
+"""Revisions of the database schema, oldest first (see ``service.migrations``)."""
