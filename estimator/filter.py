@@ -60,6 +60,11 @@ from estimator.model import (
 )
 from estimator.propagate import propagate_into, workspace
 
+#: Feed reactant concentration below which conversion is reported as 0 [mol/m^3].
+_LEAST_FEED = 1e-6
+#: Largest concentration a reading may report [mol/m^3] (above any liquid's).
+_MOST_CONCENTRATED = 1e5
+
 KIND_INPUT = 0
 KIND_MEASUREMENT = 1
 
@@ -346,7 +351,8 @@ def conversion_into(
     ``X_i = 1 - C_A,i / C_A,feed`` with the feed concentration from its state (then
     its uncertainty counts) or from the inputs; the variance is ``g^T P g`` for the
     gradient g of X_i (first-order propagation). With no reactant in the feed the
-    conversion is undefined and reported as 0 with variance 0.
+    conversion is undefined and reported as 0 with variance 0 (below
+    ``_LEAST_FEED``, 1e-6 mol/m^3, the ratio would only amplify round-off).
     """
     n_vessels = ip[IP_N]
     n_species = ip[IP_S]
@@ -354,7 +360,7 @@ def conversion_into(
     i_feed = ip[IP_FEED + ia]
     feed = x[i_feed] if i_feed >= 0 else u[1 + n_vessels + ia]
     for i in range(n_vessels):
-        if feed <= 0.0:
+        if feed <= _LEAST_FEED:
             out[i] = 0.0
             out[n_vessels + i] = 0.0
             continue
@@ -905,13 +911,24 @@ class CascadeFilter:
             if not isinstance(vessel.temperature, float):
                 what = "a temperature must be above absolute zero"
                 put(vessel.temperature.tag, 1e-6, math.inf, what, vessel.temperature.range)
+        # Concentrations: analyzer noise can read a little below zero, not more than
+        # ten of its own sigma; and no liquid holds more than 1e5 mol/m^3 (pure
+        # water is about 55,000 mol/m^3: 997 kg/m^3 / 0.018 kg/mol).
+        top = _MOST_CONCENTRATED
+
+        def concentration(tag: str, std: float | None, rng: tuple[float, float] | None) -> None:
+            low = -10.0 * std if std else 0.0
+            what = (
+                f"not a possible concentration: outside [{low:g}, {top:g}] mol/m^3 (more than "
+                "10 sigma of the analyzer's noise below zero, or denser than any liquid)"
+            )
+            put(tag, low, top, what, rng)
+
         for source in cfg.feed.composition.values():
             if not isinstance(source, float):
-                # Analyzer noise can read slightly below zero; a gross negative is refused
-                # by the tag's range when one is configured.
-                put(source.tag, -math.inf, math.inf, "", source.range)
+                concentration(source.tag, source.std, source.range)
         for meas in cfg.measurements:
-            put(meas.tag, -math.inf, math.inf, "", meas.range)
+            concentration(meas.tag, meas.std, meas.range)
         return limits
 
     def _try_start(self) -> bool:
@@ -935,8 +952,8 @@ class CascadeFilter:
             if j is None:
                 continue
             rows = np.flatnonzero((pending[:, 1] == KIND_MEASUREMENT) & (pending[:, 2] == j))
-            if rows.size:
-                u0[1 + lay.n_vessels + s] = pending[rows[0], 3]
+            if rows.size:  # a first reading a little below zero starts the feed at zero
+                u0[1 + lay.n_vessels + s] = max(pending[rows[0], 3], 0.0)
         # History starts one dead time before the first reading, so that analyzer
         # samples taken before it but reported after it are not refused as too old.
         lag = max((d.dead_time for d in self.measurements), default=0.0)

@@ -413,7 +413,18 @@ class Hub:
 
     def _store_output(self, runtime: Runtime, out: SessionOutput, *, live: bool = True) -> None:
         """Store what an ingest produced; tell subscribers and webhooks when ``live``."""
-        rows = estimate_rows(runtime.config, out.estimates)
+        batch = out.estimates
+        finite = _finite_rows(batch)
+        if not finite.all():
+            # Never expected (the filter bounds its state); kept out of the store,
+            # whose rows must be JSON numbers, rather than failing the request.
+            log.warning(
+                "train %s: %d estimate rows with non-finite numbers not stored",
+                runtime.name,
+                int(np.count_nonzero(~finite)),
+            )
+            batch = batch.take(finite)
+        rows = estimate_rows(runtime.config, batch)
         if rows:
             for row in rows:
                 runtime.unsettled[row["t"]] = row
@@ -652,6 +663,16 @@ def _offer(queue: asyncio.Queue[LiveItem], item: LiveItem) -> None:
         except asyncio.QueueEmpty:
             pass
         queue.put_nowait(item)
+
+
+def _finite_rows(batch: EstimateBatch) -> np.ndarray:
+    """Mask of the rows whose every number is finite."""
+    ok = np.ones(len(batch), dtype=bool)
+    for name in ("concentration", "concentration_std", "conversion", "conversion_std",
+                 "design_conversion", "activity", "activity_std", "feed", "inputs"):  # fmt: skip
+        values = getattr(batch, name).reshape(len(batch), -1)
+        ok &= np.isfinite(values).all(axis=1)
+    return ok
 
 
 def _attach(runtime: Runtime) -> None:

@@ -8,15 +8,11 @@ Two promises, checked on random input (hypothesis, fixed seeds, bounded examples
 - A :class:`TrainSession` fed readings in any order, in batches of any size, with
   gaps, duplicates (same value or another), unknown tags, plausible values and
   values it must refuse (NaN, infinity, outside a tag's declared range, below
-  absolute zero) never raises, and never produces a non-finite estimate, a
+  absolute zero, concentrations more than ten analyzer sigma below zero or above
+  any liquid's) never raises, and never produces a non-finite estimate, a
   negative concentration or activity, or a covariance that is not symmetric
-  positive definite. Refused readings come back with a reason.
-
-Negative or absurdly large values on tags without a declared range (the
-analyzers, TI-202), and positive values below about 1e-150 mol/m^3 on the feed
-analyzer, are not generated yet: today they can give non-finite or negative
-estimates or a singular-matrix error inside the filter, which the filter is to
-bound first.
+  positive definite. Refused readings come back with a reason. Analyzer readings
+  a little below zero (noise) and vanishingly small ones are taken.
 
 Complements ``test_filter.py``'s random-readings test (the filter alone, on a
 seven-state train, values in SI): here the whole session on the demo train, tag
@@ -234,14 +230,25 @@ def plausible_value(tag: str) -> st.SearchStrategy[float]:
 
 # Values a transmitter, a historian or a client bug can send, which the session
 # refuses: not finite anywhere; outside the declared range where a tag has one
-# (FI-200 0..40 m^3/h, TI-201 0..95 degC); below absolute zero for TI-202.
+# (FI-200 0..40 m^3/h, TI-201 0..95 degC); below absolute zero for TI-202; for the
+# analyzers (1-sigma 25, 20 and 15 mol/m^3) more than 10 sigma below zero or above
+# 1e5 mol/m^3.
+ANALYZER_REFUSED = [-1000.0, -1.83e20, 1.5e5, 1e200]
 REFUSED_VALUES = {
     tag: [math.nan, math.inf, -math.inf]
-    + {"FI-200": [-1.0, 40.5, 1e6], "TI-201": [-0.5, 95.5, 1e6], "TI-202": [-300.0, -1e6]}.get(
-        tag, []
-    )
+    + {
+        "FI-200": [-1.0, 40.5, 1e6],
+        "TI-201": [-0.5, 95.5, 1e6],
+        "TI-202": [-300.0, -1e6],
+        "AI-200G": ANALYZER_REFUSED,
+        "AI-203G": ANALYZER_REFUSED,
+        "LAB-202F": ANALYZER_REFUSED,
+    }.get(tag, [])
     for tag in TAGS
 }
+# Odd values the analyzers may send that are taken: noise a little below zero,
+# vanishingly small, zero.
+ANALYZER_EDGE = [-100.0, -1e-3, 0.0, 1e-160, 1e-12, 9.9e4]
 
 
 @st.composite
@@ -256,7 +263,7 @@ def reading_streams(draw: st.DrawFn) -> list[list[tuple[str, float, float]]]:
     span = draw(st.sampled_from([600.0, 2 * HOUR, 24 * HOUR]), label="span")
     readings: list[tuple[str, float, float]] = []
     for _ in range(count):
-        kind = draw(st.sampled_from(["plausible"] * 6 + ["refused", "repeat", "unknown"]))
+        kind = draw(st.sampled_from(["plausible"] * 6 + ["refused", "repeat", "unknown", "edge"]))
         if kind == "repeat" and readings:
             tag, t, v = draw(st.sampled_from(readings))
             if tag in PLAUSIBLE and draw(st.booleans()):
@@ -269,6 +276,8 @@ def reading_streams(draw: st.DrawFn) -> list[list[tuple[str, float, float]]]:
             v = draw(st.floats(allow_nan=True, allow_infinity=True))
         elif kind == "refused":
             v = draw(st.sampled_from(REFUSED_VALUES[tag]))
+        elif kind == "edge" and tag.startswith(("AI-", "LAB-")):
+            v = draw(st.sampled_from(ANALYZER_EDGE))
         else:
             v = draw(plausible_value(tag))
         readings.append((tag, t, v))

@@ -261,3 +261,27 @@ def test_refused_readings_are_echoed_in_the_posted_unit(client: TestClient):
     )
     refused = r.json()["refused"]
     assert refused[0]["value"] == -3.5  # m^3/h as posted, not m^3/s
+
+
+def test_non_finite_estimates_are_kept_out_of_the_store(client: TestClient):
+    # The filter bounds its state, so this should never happen; if it did, the rows
+    # are left out (the store holds JSON numbers) and the request still succeeds.
+    from estimator.session import EstimateBatch
+
+    hub = client.app.state.hub  # type: ignore[attr-defined]
+    session = hub.get(NAME).session
+    real = session.ingest_codes
+
+    def poisoned(*args: object, **kwargs: object):
+        out = real(*args, **kwargs)  # type: ignore[arg-type]
+        if len(out.estimates):
+            bad = {n: getattr(out.estimates, n).copy() for n in EstimateBatch.__dataclass_fields__}
+            bad["activity_std"][0] = math.nan
+            out.estimates = EstimateBatch(**bad)
+        return out
+
+    session.ingest_codes = poisoned
+    readings = demo_readings(1.0, time.time())
+    assert post(client, readings) == len(readings)
+    rows = client.get(f"{URL}/estimates").json()["data"]
+    assert rows and all(math.isfinite(r["activity"]["std"]) for r in rows)
