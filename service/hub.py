@@ -668,6 +668,8 @@ def _offer(queue: asyncio.Queue[LiveItem], item: LiveItem) -> None:
 def _finite_rows(batch: EstimateBatch) -> np.ndarray:
     """Mask of the rows whose every number is finite."""
     ok = np.ones(len(batch), dtype=bool)
+    if not len(batch):
+        return ok
     for name in ("concentration", "concentration_std", "conversion", "conversion_std",
                  "design_conversion", "activity", "activity_std", "feed", "inputs"):  # fmt: skip
         values = getattr(batch, name).reshape(len(batch), -1)

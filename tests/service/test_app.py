@@ -285,3 +285,14 @@ def test_non_finite_estimates_are_kept_out_of_the_store(client: TestClient):
     assert post(client, readings) == len(readings)
     rows = client.get(f"{URL}/estimates").json()["data"]
     assert rows and all(math.isfinite(r["activity"]["std"]) for r in rows)
+
+
+def test_a_reading_that_yields_no_estimate_yet_is_accepted(client: TestClient):
+    # One flow reading: the filter waits for every input's first reading, so the
+    # session returns no estimate rows; the reading is still journaled.
+    r = client.post(
+        f"{URL}/readings", json={"readings": [{"tag": "FI-200", "time": time.time(), "value": 12.0}]}
+    )
+    assert r.status_code == 200, r.text
+    assert r.json()["accepted"] == 1
+    assert client.get(f"{URL}/estimates/latest").status_code == 404
