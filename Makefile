@@ -13,12 +13,12 @@ PYTHON ?= python3
 # estimator package keys its cache folder on a digest of its sources below this.
 export STAGEWATCH_CACHE_DIR := $(CURDIR)/.cache
 
-.PHONY: help venv run replay demo test bench lint clean
+.PHONY: help venv run replay demo test bench bench-soak figures lint clean
 
 help: ## List the targets
 	@echo "stagewatch make targets:"
 	@grep -E '^[a-z][a-zA-Z_-]*:.*## ' $(MAKEFILE_LIST) \
-		| awk 'BEGIN {FS = ":.*## "} {printf "  %-8s %s\n", $$1, $$2}'
+		| awk 'BEGIN {FS = ":.*## "} {printf "  %-10s %s\n", $$1, $$2}'
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -48,6 +48,13 @@ bench: $(STAMP) ## Time the filter against its reference, replay a month and a y
 	$(BIN)/python bench/bench_filter.py
 	$(BIN)/python bench/bench_replay.py
 	$(BIN)/python bench/bench_service.py
+
+# Not part of `make test` or CI. Shorter: make bench-soak SOAK_ARGS="--minutes 1"
+bench-soak: $(STAMP) ## Soak the service 10 min at 5,000 readings/s over 200 trains: memory, queue, latency
+	$(BIN)/python bench/bench_soak.py $(SOAK_ARGS)
+
+figures: $(STAMP) ## Alert figures on simulated months: false alarms, warning time of a slow deactivation
+	$(BIN)/python bench/alert_figures.py
 
 lint: $(STAMP) ## ruff check, then mypy
 	$(BIN)/ruff check estimator service tests bench
