@@ -85,7 +85,9 @@ class Runtime:
     latest: dict[str, Any] | None = None
     # Estimate rows not yet written: a reading with dead time revises the last few
     # minutes, so rows are stored once they are older than that (see Hub._settle).
-    unsettled: dict[float, dict[str, Any]] = field(default_factory=dict)
+    # Held as (batch, row index): a row is turned into its stored form only if it
+    # is stored (see Hub._settle).
+    unsettled: dict[float, tuple[EstimateBatch, int]] = field(default_factory=dict)
     subscribers: set[tuple[asyncio.AbstractEventLoop, asyncio.Queue[LiveItem]]] = field(
         default_factory=set
     )
@@ -111,13 +113,18 @@ class JournalReader:
         return self.store.readings_between(self.train_id, self.tags, start, stop, upto=upto)
 
 
-def estimate_rows(config: TrainConfig, batch: EstimateBatch) -> list[dict[str, Any]]:
+def estimate_rows(
+    config: TrainConfig, batch: EstimateBatch, rows: Sequence[int] | None = None
+) -> list[dict[str, Any]]:
     """Estimates as compact JSON-ready rows (the stored and streamed form).
 
     Keys: t (epoch s), c and cs (N x S concentrations and 1-sigma [mol/m^3]),
     x, xs, xd (N conversions, 1-sigma, design expectation [-]), a and as (activity
-    and 1-sigma), f (S feed concentrations [mol/m^3]), q (flow [m^3/s]).
+    and 1-sigma), f (S feed concentrations [mol/m^3]), q (flow [m^3/s]). ``rows``
+    picks some rows of the batch (all by default).
     """
+    if rows is not None:
+        batch = batch.take(np.asarray(rows, dtype=np.int64))
     columns = {
         "t": batch.time.tolist(),
         "c": batch.concentration.tolist(),
@@ -424,15 +431,15 @@ class Hub:
                 int(np.count_nonzero(~finite)),
             )
             batch = batch.take(finite)
-        rows = estimate_rows(runtime.config, batch)
-        if rows:
-            for row in rows:
-                runtime.unsettled[row["t"]] = row
+        n = len(batch)
+        if n:
+            for k, t in enumerate(batch.time.tolist()):
+                runtime.unsettled[t] = (batch, k)
             self._settle(runtime, runtime.session.filter.t - _settle_lag(runtime))
-            if runtime.latest is None or rows[-1]["t"] >= runtime.latest["t"]:
-                runtime.latest = rows[-1]
-            if live:
-                self._publish(runtime, "estimate", rows)
+            if runtime.latest is None or float(batch.time[-1]) >= runtime.latest["t"]:
+                runtime.latest = estimate_rows(runtime.config, batch, [n - 1])[0]
+            if live and runtime.subscribers:
+                self._publish(runtime, "estimate", estimate_rows(runtime.config, batch))
         gated = gated_rows(out.gated, "gated") + gated_rows(out.steps, "step")
         if gated:
             self.store.upsert_gated(runtime.train_id, gated)
@@ -442,7 +449,7 @@ class Hub:
                 self._announce(runtime, out.alerts)
         if out.alerts:  # an alert's snapshot changes only with its events
             _refresh_alerts(runtime)
-        self.metrics.estimates.inc(len(rows))
+        self.metrics.estimates.inc(n)
 
     def _settle(self, runtime: Runtime, before: float = math.inf) -> None:
         """Write the held estimate rows older than ``before`` (all by default).
@@ -459,13 +466,15 @@ class Hub:
         ready = sorted(t for t in runtime.unsettled if t < before)
         if not ready:
             return
-        rows = [runtime.unsettled.pop(t) for t in ready]
+        refs = [runtime.unsettled.pop(t) for t in ready]
         if not every:
-            self.store.write_estimates(runtime.train_id, rows)
+            self.store.write_estimates(runtime.train_id, _rows_of(runtime.config, refs))
             return
         bucket = np.floor(np.array(ready) / every)
         last = np.append(bucket[1:] != bucket[:-1], True)
-        rows = [row for row, keep in zip(rows, last.tolist(), strict=True) if keep]
+        rows = _rows_of(
+            runtime.config, [r for r, keep in zip(refs, last.tolist(), strict=True) if keep]
+        )
         # The held rows run without a gap from the first to the last (a revision
         # re-emits every row from its rewind on): what is stored from the first
         # one's interval to the last one is superseded.
@@ -663,6 +672,22 @@ def _offer(queue: asyncio.Queue[LiveItem], item: LiveItem) -> None:
         except asyncio.QueueEmpty:
             pass
         queue.put_nowait(item)
+
+
+def _rows_of(
+    config: TrainConfig, refs: Sequence[tuple[EstimateBatch, int]]
+) -> list[dict[str, Any]]:
+    """Return the stored rows of (batch, index) references, in the order given."""
+    rows: list[dict[str, Any]] = []
+    k = 0
+    while k < len(refs):  # consecutive references into one batch are built together
+        batch = refs[k][0]
+        j = k
+        while j < len(refs) and refs[j][0] is batch:
+            j += 1
+        rows += estimate_rows(config, batch, [i for _, i in refs[k:j]])
+        k = j
+    return rows
 
 
 def _finite_rows(batch: EstimateBatch) -> np.ndarray:
