@@ -363,30 +363,24 @@ class Hub:
             ]
             # OPC UA quality: below 64 the source itself calls the value bad.
             bad = take & np.array([q is not None and q < BAD_QUALITY for q in qualities])
-            for i in np.flatnonzero(bad).tolist():
+            tolerance = self.settings.future_tolerance
+            future = take & ~bad & (t > now + tolerance)
+            for i in np.flatnonzero(bad | future).tolist():
+                reason = (
+                    f"quality code {qualities[i]} is bad (below {BAD_QUALITY}): not applied"
+                    if bad[i]
+                    else f"time in the future beyond the tolerance ({tolerance:g} s)"
+                )
                 refused.append(
                     RefusedReading(
                         index=i,
                         tag=tags[i],
                         time=float(t[i]),
                         value=_json(float(v[i])),
-                        reason=f"quality code {qualities[i]} is bad (below {BAD_QUALITY}): "
-                        "not applied",
+                        reason=reason,
                     )
                 )
             take &= ~bad
-            tolerance = self.settings.future_tolerance
-            future = take & (t > now + tolerance)
-            for i in np.flatnonzero(future).tolist():
-                refused.append(
-                    RefusedReading(
-                        index=i,
-                        tag=tags[i],
-                        time=float(t[i]),
-                        value=_json(float(v[i])),
-                        reason=f"time in the future beyond the tolerance ({tolerance:g} s)",
-                    )
-                )
             keep = np.flatnonzero(take & ~future)
             rows = [(tags[i], float(t[i]), float(v[i]), qualities[i]) for i in keep.tolist()]
             result = self.store.append_readings(runtime.train_id, rows, received_at=now)

@@ -617,6 +617,21 @@ def replay(scenario: Scenario) -> list[AlertEvent]:
     return events
 
 
+def feed_hourly(session: TrainSession, scenario: Scenario) -> tuple[list[AlertEvent], Any]:
+    """Simulate a scenario and feed its readings to the session in 1-h batches by
+    arrival, as a replay would; then judge what is held. (events, simulation)."""
+    sim = simulate(session.model, scenario)
+    tags, times, values = sim.columns()
+    tag_array = np.array(tags, dtype=object)
+    events: list[AlertEvent] = []
+    for start in np.arange(0.0, scenario.duration + 1.0, HOUR):
+        part = (sim.received >= start) & (sim.received < start + HOUR)
+        out = session.ingest(tag_array[part].tolist(), times[part], values[part], si=True)
+        events += out.alerts
+    events += session.flush_alerts()
+    return events, sim
+
+
 def test_demo_train_sudden_activity_loss_is_flagged_within_two_residence_times():
     # 15 % of the activity lost at once after a day of normal operation; an activity or
     # conversion alert within two total residence times at nominal flow,
@@ -745,16 +760,7 @@ def test_throughput_and_feed_steps_raise_no_shortfall_with_the_dynamic_expectati
     )  # fmt: skip
 
     def shortfall_alerts(config: TrainConfig) -> list[AlertEvent]:
-        session = TrainSession(config)
-        sim = simulate(session.model, scenario)
-        tags, times, values = sim.columns()
-        tag_array = np.array(tags, dtype=object)
-        events: list[AlertEvent] = []
-        for start in np.arange(0.0, scenario.duration + 1.0, HOUR):
-            part = (sim.received >= start) & (sim.received < start + HOUR)
-            out = session.ingest(tag_array[part].tolist(), times[part], values[part], si=True)
-            events += out.alerts
-        events += session.flush_alerts()
+        events, _ = feed_hourly(TrainSession(config), scenario)
         return [e for e in events if e.rule.startswith("conversion_shortfall")]
 
     assert _LOADED.alerts.conversion_shortfall.expectation == "dynamic"
@@ -826,15 +832,7 @@ def test_slow_deactivation_is_alerted_before_the_shortfall_reaches_five_points()
         seed=2,
     )
     session = TrainSession(_LOADED)
-    sim = simulate(session.model, scenario)
-    tags, times, values = sim.columns()
-    tag_array = np.array(tags, dtype=object)
-    events: list[AlertEvent] = []
-    for start in np.arange(0.0, scenario.duration + 1.0, HOUR):
-        part = (sim.received >= start) & (sim.received < start + HOUR)
-        out = session.ingest(tag_array[part].tolist(), times[part], values[part], si=True)
-        events += out.alerts
-    events += session.flush_alerts()
+    events, sim = feed_hourly(session, scenario)
     watched = ("activity", "conversion_shortfall")
     first = next(e for e in events if e.to_state == ACTIVE and e.rule.startswith(watched))
     k = min(int(np.searchsorted(sim.times, first.time)), len(sim.times) - 1)

@@ -44,6 +44,32 @@ def late_lab_batches(end: float) -> list[list[dict[str, object]]]:
     return batches
 
 
+def post_and_mirror(
+    client: TestClient,
+    session: TrainSession,
+    batches: list[list[dict[str, object]]],
+    vessel: int,
+    species: int,
+) -> dict[float, float]:
+    """Post each batch to the service and to a session; the session's rows by time.
+
+    Returns one concentration [mol/m^3] per estimate time, revisions replacing
+    earlier values, as the service's history should end up.
+    """
+    rows: dict[float, float] = {}
+    for batch in batches:
+        r = client.post(f"{URL}/readings", json={"readings": batch})
+        assert r.status_code == 200 and not r.json()["refused"], r.text
+        out = session.ingest(
+            [b["tag"] for b in batch],  # type: ignore[misc]
+            [b["time"] for b in batch],
+            [b["value"] for b in batch],
+        )
+        column = out.estimates.concentration[:, vessel, species]
+        rows.update(zip(out.estimates.time.tolist(), column.tolist(), strict=True))
+    return rows
+
+
 def test_history_after_late_lab_results_equals_a_whole_horizon_session(
     database_url: str, tmp_path: Path
 ):
@@ -52,20 +78,10 @@ def test_history_after_late_lab_results_equals_a_whole_horizon_session(
         data_dir=tmp_path, database_url=database_url, bootstrap_key=ADMIN, event_memory=600.0
     )
     session = TrainSession(load_train_config(DEMO))  # no journal: all 6 h in memory
-    expected: dict[float, float] = {}
     with TestClient(create_app(settings)) as client:
         client.headers["Authorization"] = f"Bearer {ADMIN}"
         assert client.post("/api/v1/trains", json={"toml": DEMO.read_text()}).status_code == 201
-        for batch in batches:
-            r = client.post(f"{URL}/readings", json={"readings": batch})
-            assert r.status_code == 200 and not r.json()["refused"], r.text
-            out = session.ingest(
-                [b["tag"] for b in batch],  # type: ignore[misc]
-                [b["time"] for b in batch],
-                [b["value"] for b in batch],
-            )
-            for t, c in zip(out.estimates.time, out.estimates.concentration[:, 1, 1], strict=True):
-                expected[float(t)] = float(c)  # R-202 fructose; revisions replace
+        expected = post_and_mirror(client, session, batches, 1, 1)  # R-202 fructose
         runtime = client.app.state.hub.get("wrenfield-line2")  # type: ignore[attr-defined]
         held = len(runtime.session.filter.events()["time"])
         rows = client.get(f"{URL}/estimates").json()["data"]
@@ -89,21 +105,11 @@ def test_history_keeps_the_last_row_of_each_interval(database_url: str, tmp_path
     settings = Settings(data_dir=tmp_path, database_url=database_url, bootstrap_key=ADMIN)
     assert settings.estimate_every == 10.0
     session = TrainSession(load_train_config(DEMO))
-    final: dict[float, float] = {}
     with TestClient(create_app(settings)) as client:
         client.headers["Authorization"] = f"Bearer {ADMIN}"
         assert client.post("/api/v1/trains", json={"toml": DEMO.read_text()}).status_code == 201
-        for k in range(0, len(dense), 150):
-            batch = dense[k : k + 150]
-            r = client.post(f"{URL}/readings", json={"readings": batch})
-            assert r.status_code == 200 and not r.json()["refused"], r.text
-            out = session.ingest(
-                [b["tag"] for b in batch],  # type: ignore[misc]
-                [b["time"] for b in batch],
-                [b["value"] for b in batch],
-            )
-            for t, c in zip(out.estimates.time, out.estimates.concentration[:, 2, 0], strict=True):
-                final[float(t)] = float(c)
+        batches = [dense[k : k + 150] for k in range(0, len(dense), 150)]
+        final = post_and_mirror(client, session, batches, 2, 0)  # R-203 glucose
         rows = client.get(f"{URL}/estimates").json()["data"]
         latest = client.get(f"{URL}/estimates/latest").json()
     times = np.array(sorted(final))
