@@ -321,7 +321,7 @@ def _bin_sums(keys: FloatArray, values: FloatArray) -> tuple[FloatArray, FloatAr
             for c in range(values.shape[1])
         ]
     )
-    return uniq, sums
+    return np.asarray(uniq, dtype=np.float64), sums.astype(np.float64)
 
 
 def _fold_nis(rows: FloatArray, until: float, step: float) -> FloatArray:

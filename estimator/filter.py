@@ -43,6 +43,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
+from typing import Literal
 
 import numba
 import numpy as np
@@ -1160,7 +1161,7 @@ class CascadeFilter:
         k = len(old)
         for j in range(s, w):
             tj = self._snap_t[j]
-            side = "left" if tj == self._origin else "right"
+            side: Literal["left", "right"] = "left" if tj == self._origin else "right"
             self._snap_pos[j] = int(np.searchsorted(old[:, 0], tj, side=side))
         self._snap_pos[w:] += k
         self._live_pos += k

@@ -238,7 +238,7 @@ class Hub:
         self, config: TrainConfig, train_id: int, data: bytes | None = None
     ) -> TrainSession:
         """Make a session (from checkpoint ``data`` if given) that reads back from the journal."""
-        reader = JournalReader(self.store, train_id, config.tags())
+        reader = JournalReader(self.store, train_id, list(config.tags()))
         memory = self.settings.event_memory
         if data is None:
             return TrainSession(config, memory=memory, journal=reader)
