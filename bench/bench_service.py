@@ -522,6 +522,7 @@ async def constant_rate(
     seconds: float,
     connections: int,
     drain: float,
+    on_answer: Callable[[int, float, float, int, bytes], None] | None = None,
 ) -> RateResult:
     """Send ``rate`` requests per second for ``seconds``, on schedule, whatever the answers.
 
@@ -530,6 +531,8 @@ async def constant_rate(
     A request waits for a free connection when all ``connections`` are busy, and
     that wait counts in its latency, which runs from its due time to its answer.
     Requests unanswered ``drain`` seconds after the last is due count as infinite.
+    ``on_answer``, when given, is called with each answer as it arrives: (i, due
+    time, answer time, status, body), both times on ``time.perf_counter``'s clock [s].
     """
     conns = [Http(port, key) for _ in range(connections)]
     await asyncio.gather(*(c.open() for c in conns))
@@ -553,8 +556,11 @@ async def constant_rate(
         try:
             target = path(i) if callable(path) else path
             status, body = await conn.post(target, body_for(i, wall + (due - begin)))
-            latencies[i] = clock() - due
+            answered = clock()
+            latencies[i] = answered - due
             tally.add(status, body)
+            if on_answer is not None:
+                on_answer(i, due, answered, status, body)
         finally:
             in_flight -= 1
             pool.put_nowait(conn)
