@@ -258,10 +258,16 @@ def create_app(settings: Settings | None = None, *, store: Store | None = None) 
         tags=["readings"],
         responses=_refusals(400, 404, 413, 429),
     )
-    def post_readings(
+    async def post_readings(
         name: str, body: ReadingsIn, request: Request, caller: IngestAccess
     ) -> IngestResult:
-        """Post a batch of readings (any order); each refused one comes back with its reason."""
+        """Post a batch of readings (any order); each refused one comes back with its reason.
+
+        Runs on the event loop, not in the thread pool: the work is CPU-bound Python
+        that holds the GIL either way (a train's lock serialises it), and handing
+        each request to a worker thread and back cost more than the work of a
+        single reading (thread switches contending for the GIL).
+        """
         if len(body.readings) > settings.max_batch:
             raise HTTPException(413, f"at most {settings.max_batch} readings per request")
         if limiter is not None:
@@ -596,7 +602,7 @@ def _open_store(settings: Settings) -> Store:
     url = settings.database_url
     if url.startswith("sqlite:///"):
         Path(url.removeprefix("sqlite:///")).parent.mkdir(parents=True, exist_ok=True)
-    db = Store(url)
+    db = Store(url, timeout=settings.database_timeout)
     from service.migrations import prepare_schema  # Alembic, only when a store opens
 
     try:

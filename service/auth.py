@@ -320,8 +320,11 @@ class KeyCache:
             self._entries.clear()
 
 
-def get_settings(request: Request) -> Settings:
+async def get_settings(request: Request) -> Settings:
     """Return the service settings kept in ``app.state.settings``.
+
+    This and the other getters are ``async`` only so that FastAPI calls them on
+    the event loop: a plain ``def`` dependency costs a thread-pool hop per request.
 
     Raises
     ------
@@ -334,7 +337,7 @@ def get_settings(request: Request) -> Settings:
     return settings
 
 
-def get_key_store(request: Request) -> KeyStore:
+async def get_key_store(request: Request) -> KeyStore:
     """Return the key store kept in ``app.state.keys``.
 
     Raises
@@ -348,7 +351,7 @@ def get_key_store(request: Request) -> KeyStore:
     return store
 
 
-def get_key_cache(request: Request) -> KeyCache:
+async def get_key_cache(request: Request) -> KeyCache:
     """Return the app's :class:`KeyCache` (``app.state.key_cache``), made on first use."""
     cache: KeyCache | None = getattr(request.app.state, "key_cache", None)
     if cache is None:

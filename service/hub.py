@@ -34,10 +34,11 @@ import numpy as np
 from estimator.alerts import Alert, AlertActionError, AlertEngine, AlertEvent
 from estimator.config import TrainConfig
 from estimator.session import EstimateBatch, GatedReading, SessionOutput, TrainSession
+from estimator.warmup import warm_up
 from service.metrics import ServiceMetrics
 from service.schemas import IngestResult, RefusedReading
 from service.settings import Settings
-from service.store import Store, TrainRecord
+from service.store import Store, StoreUnavailable, TrainRecord
 from service.webhooks import WebhookSender
 
 log = logging.getLogger("stagewatch.hub")
@@ -92,6 +93,9 @@ class Runtime:
         default_factory=set
     )
     alerts: list[Alert] = field(default_factory=list)
+    # Gated readings and alert events not yet written (a failed write leaves them).
+    pending_gated: list[dict[str, Any]] = field(default_factory=list)
+    pending_alerts: list[AlertEvent] = field(default_factory=list)
 
 
 class JournalReader:
@@ -219,7 +223,13 @@ class Hub:
     # ------------------------------------------------------------------ lifecycle
 
     def start(self) -> None:
-        """Load every live train: restore its checkpoint, replay the journal after it."""
+        """Load every live train: restore its checkpoint, replay the journal after it.
+
+        First the filter's compiled kernels are loaded (:func:`warm_up`), so that
+        readiness means no request will wait for them.
+        """
+        took = warm_up()
+        log.info("filter kernels loaded in %.1f s", took)
         for record in self.store.list_trains():
             self._load(record)
         if self.webhooks is not None:
@@ -227,12 +237,21 @@ class Hub:
         self.ready = True
 
     def stop(self) -> None:
-        """Checkpoint every train (graceful shutdown) and stop the webhook sender."""
-        for runtime in list(self.trains.values()):
-            with runtime.lock:
-                self._checkpoint(runtime)
-        if self.webhooks is not None:
-            self.webhooks.stop()
+        """Checkpoint every train (graceful shutdown) and stop the webhook sender.
+
+        A train whose checkpoint cannot be written is logged and skipped (its
+        journal brings it back at the next start); the others are still saved.
+        """
+        try:
+            for runtime in list(self.trains.values()):
+                with runtime.lock:
+                    try:
+                        self._checkpoint(runtime)
+                    except StoreUnavailable as exc:
+                        log.error("train %s: no checkpoint at shutdown: %s", runtime.name, exc)
+        finally:
+            if self.webhooks is not None:
+                self.webhooks.stop()
 
     def _new_session(
         self, config: TrainConfig, train_id: int, data: bytes | None = None
@@ -399,10 +418,18 @@ class Hub:
             if new.size:
                 sel = keep[new]
                 out = session.ingest_codes(codes[sel], t[sel], v[sel])
-                self._store_output(runtime, out)
+                # Journaled and applied: the batch is accepted, whatever follows.
                 runtime.journal_seq = max(runtime.journal_seq, max(result.new_ids))
-                if session.filter.t >= runtime.checkpoint_time + self.settings.checkpoint_every:
-                    self._checkpoint(runtime)
+                try:
+                    self._store_output(runtime, out)
+                    if session.filter.t >= runtime.checkpoint_time + self.settings.checkpoint_every:
+                        self._checkpoint(runtime)
+                except StoreUnavailable as exc:
+                    # What could not be written waits on the runtime for the next write
+                    # (and a restart re-derives it from the journal); refusing the batch
+                    # now would misreport readings already journaled as not accepted.
+                    self.metrics.deferred_writes.inc()
+                    log.warning("train %s: writes deferred: %s", runtime.name, exc)
             self.metrics.accepted.inc(int(new.size))
             self.metrics.duplicates.inc(len(result.duplicates))
             for r in refused:
@@ -429,21 +456,32 @@ class Hub:
         if n:
             for k, t in enumerate(batch.time.tolist()):
                 runtime.unsettled[t] = (batch, k)
-            self._settle(runtime, runtime.session.filter.t - _settle_lag(runtime))
             if runtime.latest is None or float(batch.time[-1]) >= runtime.latest["t"]:
                 runtime.latest = estimate_rows(runtime.config, batch, [n - 1])[0]
             if live and runtime.subscribers:
                 self._publish(runtime, "estimate", estimate_rows(runtime.config, batch))
-        gated = gated_rows(out.gated, "gated") + gated_rows(out.steps, "step")
-        if gated:
-            self.store.upsert_gated(runtime.train_id, gated)
+        runtime.pending_gated += gated_rows(out.gated, "gated") + gated_rows(out.steps, "step")
+        runtime.pending_alerts += out.alerts
         if out.alerts:
-            self.store.append_alert_events(runtime.train_id, out.alerts)
             if live:
                 self._announce(runtime, out.alerts)
-        if out.alerts:  # an alert's snapshot changes only with its events
-            _refresh_alerts(runtime)
+            _refresh_alerts(runtime)  # an alert's snapshot changes only with its events
         self.metrics.estimates.inc(n)
+        self._write_pending(runtime)
+
+    def _write_pending(self, runtime: Runtime) -> None:
+        """Write held gated readings and alert events, then settled estimate rows.
+
+        Each is dropped from the runtime only once written, so a write that fails
+        (StoreUnavailable) is tried again with the next one.
+        """
+        if runtime.pending_gated:
+            self.store.upsert_gated(runtime.train_id, runtime.pending_gated)
+            runtime.pending_gated = []
+        if runtime.pending_alerts:
+            self.store.append_alert_events(runtime.train_id, runtime.pending_alerts)
+            runtime.pending_alerts = []
+        self._settle(runtime, runtime.session.filter.t - _settle_lag(runtime))
 
     def _settle(self, runtime: Runtime, before: float = math.inf) -> None:
         """Write the held estimate rows older than ``before`` (all by default).
@@ -460,9 +498,10 @@ class Hub:
         ready = sorted(t for t in runtime.unsettled if t < before)
         if not ready:
             return
-        refs = [runtime.unsettled.pop(t) for t in ready]
+        refs = [runtime.unsettled[t] for t in ready]
         if not every:
             self.store.write_estimates(runtime.train_id, _rows_of(runtime.config, refs))
+            _forget(runtime, ready)
             return
         bucket = np.floor(np.array(ready) / every)
         last = np.append(bucket[1:] != bucket[:-1], True)
@@ -474,6 +513,7 @@ class Hub:
         # one's interval to the last one is superseded.
         span = (float(bucket[0]) * every, ready[-1])
         self.store.write_estimates(runtime.train_id, rows, replace=span)
+        _forget(runtime, ready)
 
     def settle(self, name: str) -> None:
         """Write every held estimate row of a train (before a read of its history)."""
@@ -485,7 +525,9 @@ class Hub:
         self, runtime: Runtime, *, force: bool = False, alert_events: Sequence[AlertEvent] = ()
     ) -> None:
         """Save the session; ``force`` saves one whose filter has not started yet."""
-        self._settle(runtime)  # rows before the checkpoint are never replayed
+        # What the journal before the checkpoint produced is never re-derived.
+        self._write_pending(runtime)
+        self._settle(runtime)
         initialized = runtime.session.filter.initialized
         if not (initialized or force):
             return
@@ -682,6 +724,12 @@ def _rows_of(
         rows += estimate_rows(config, batch, [i for _, i in refs[k:j]])
         k = j
     return rows
+
+
+def _forget(runtime: Runtime, times: Sequence[float]) -> None:
+    """Drop held estimate rows once they are written."""
+    for t in times:
+        del runtime.unsettled[t]
 
 
 def _finite_rows(batch: EstimateBatch) -> np.ndarray:

@@ -45,6 +45,12 @@ class ServiceMetrics:
         self.estimates = Counter(
             "stagewatch_estimates", "Estimate rows produced", registry=self.registry
         )
+        self.deferred_writes = Counter(
+            "stagewatch_deferred_writes",
+            "Ingests whose estimate, gated-reading, alert-event or checkpoint writes failed "
+            "after the journal took the batch (kept and written with a later one)",
+            registry=self.registry,
+        )
         self.ingest_seconds = Histogram(
             "stagewatch_ingest_seconds",
             "Time to screen, journal, apply and store one posted batch [s]",

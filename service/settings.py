@@ -90,6 +90,9 @@ class Settings(BaseSettings):
         Store one estimate row per this interval of plant time [s] (the last of
         each interval), None for every row. The latest estimate and the live
         stream carry every row; history reads downsample further with ``every``.
+    database_timeout : float
+        How long a database operation waits for a lock held by another writer
+        before the request is answered 503 with Retry-After [s]; default 5.
     event_memory : float
         Span of each train's in-memory event log [s of plant time] (at least its
         largest dead time plus two snapshot intervals). Older readings stay in the
@@ -149,6 +152,11 @@ class Settings(BaseSettings):
             "each; None stores every row. The latest estimate and the live stream "
             "carry every row."
         ),
+    )
+    database_timeout: float = Field(
+        default=5.0,
+        gt=0.0,
+        description="How long a write waits for a locked database before a 503 [s].",
     )
     event_memory: float = Field(
         default=300.0,

@@ -290,9 +290,8 @@ def test_non_finite_estimates_are_kept_out_of_the_store(client: TestClient):
 def test_a_reading_that_yields_no_estimate_yet_is_accepted(client: TestClient):
     # One flow reading: the filter waits for every input's first reading, so the
     # session returns no estimate rows; the reading is still journaled.
-    r = client.post(
-        f"{URL}/readings", json={"readings": [{"tag": "FI-200", "time": time.time(), "value": 12.0}]}
-    )
+    reading = {"tag": "FI-200", "time": time.time(), "value": 12.0}
+    r = client.post(f"{URL}/readings", json={"readings": [reading]})
     assert r.status_code == 200, r.text
     assert r.json()["accepted"] == 1
     assert client.get(f"{URL}/estimates/latest").status_code == 404
