@@ -24,6 +24,7 @@ import asyncio
 import logging
 import math
 import threading
+import time
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
@@ -83,6 +84,7 @@ class Runtime:
     lock: threading.Lock = field(default_factory=threading.Lock)
     journal_seq: int = 0
     checkpoint_time: float = -math.inf
+    checkpoint_wall: float = -math.inf  # time.monotonic() of the last checkpoint [s]
     latest: dict[str, Any] | None = None
     # Estimate rows not yet written: a reading with dead time revises the last few
     # minutes, so rows are stored once they are older than that (see Hub._settle).
@@ -422,7 +424,7 @@ class Hub:
                 runtime.journal_seq = max(runtime.journal_seq, max(result.new_ids))
                 try:
                     self._store_output(runtime, out)
-                    if session.filter.t >= runtime.checkpoint_time + self.settings.checkpoint_every:
+                    if self._checkpoint_due(runtime):
                         self._checkpoint(runtime)
                 except StoreUnavailable as exc:
                     # What could not be written waits on the runtime for the next write
@@ -521,6 +523,19 @@ class Hub:
         with runtime.lock:
             self._settle(runtime)
 
+    def _checkpoint_due(self, runtime: Runtime) -> bool:
+        """Whether a train's session should be saved now.
+
+        Once ``checkpoint_every`` of plant time has passed, and at most once per
+        ``checkpoint_min_wall`` of wall-clock time: a historian back-filling days
+        of readings moves plant time hundreds of times faster than the clock, and
+        saving every few requests would cost more than replaying the journal.
+        """
+        settings = self.settings
+        if runtime.session.filter.t < runtime.checkpoint_time + settings.checkpoint_every:
+            return False
+        return time.monotonic() >= runtime.checkpoint_wall + settings.checkpoint_min_wall
+
     def _checkpoint(
         self, runtime: Runtime, *, force: bool = False, alert_events: Sequence[AlertEvent] = ()
     ) -> None:
@@ -537,6 +552,7 @@ class Hub:
         if not initialized:
             return
         runtime.checkpoint_time = now = runtime.session.filter.t
+        runtime.checkpoint_wall = time.monotonic()
         keep_readings = self.settings.retention_readings
         keep_estimates = self.settings.retention_estimates
         if keep_readings is not None or keep_estimates is not None:

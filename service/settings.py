@@ -90,6 +90,10 @@ class Settings(BaseSettings):
         Store one estimate row per this interval of plant time [s] (the last of
         each interval), None for every row. The latest estimate and the live
         stream carry every row; history reads downsample further with ``every``.
+    checkpoint_min_wall : float
+        Least wall-clock time between two checkpoints of one train [s]; default
+        10. Plant time alone would checkpoint a back-filled train every few
+        requests.
     database_timeout : float
         How long a database operation waits for a lock held by another writer
         before the request is answered 503 with Retry-After [s]; default 5.
@@ -157,6 +161,11 @@ class Settings(BaseSettings):
         default=5.0,
         gt=0.0,
         description="How long a write waits for a locked database before a 503 [s].",
+    )
+    checkpoint_min_wall: float = Field(
+        default=10.0,
+        ge=0.0,
+        description="Least wall-clock time between two checkpoints of a train [s].",
     )
     event_memory: float = Field(
         default=300.0,

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import time
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from fastapi.testclient import TestClient
@@ -122,3 +123,41 @@ def test_history_keeps_the_last_row_of_each_interval(database_url: str, tmp_path
     assert len(got) < len(final) / 4  # rows every 2 s, stored every 10 s
     assert all(got[t] == final[t] for t in got)  # the revised values, dead time included
     assert latest["time"] == times[-1]  # the latest estimate is every row's
+
+
+def test_a_back_fill_is_checkpointed_at_most_once_per_min_wall_interval(
+    database_url: str, tmp_path: Path
+):
+    # Six hours of readings posted in seconds, 100 a request (each request spans
+    # more than 300 s of plant time): plant time alone (checkpoint_every 300 s)
+    # saves the session after every request; checkpoint_min_wall bounds it.
+    readings = [r for r in demo_readings(6.0, time.time()) if r["tag"] != "LAB-202F"]
+    batches = [readings[k : k + 100] for k in range(0, len(readings), 100)]
+    counts = {}
+    for n, min_wall in enumerate((0.0, 3600.0)):
+        name = f"backfill-{n}"  # one database for both runs: a train each
+        toml = DEMO.read_text().replace('name = "wrenfield-line2"', f'name = "{name}"')
+        settings = Settings(
+            data_dir=tmp_path / str(min_wall),
+            database_url=database_url,
+            bootstrap_key=ADMIN,
+            checkpoint_min_wall=min_wall,
+        )
+        with TestClient(create_app(settings)) as client:
+            client.headers["Authorization"] = f"Bearer {ADMIN}"
+            r = client.post("/api/v1/trains", json={"toml": toml})
+            assert r.status_code == 201, r.text
+            store = client.app.state.store  # type: ignore[attr-defined]
+            saved: list[float] = []
+
+            def counted(*args: Any, real: Any = store.save_checkpoint, into: Any = saved) -> Any:
+                into.append(time.time())
+                return real(*args)
+
+            store.save_checkpoint = counted
+            for batch in batches:
+                r = client.post(f"/api/v1/trains/{name}/readings", json={"readings": batch})
+                assert r.status_code == 200
+            counts[min_wall] = len(saved)
+    assert len(batches) >= 10 and counts[0.0] >= len(batches) - 1
+    assert counts[3600.0] == 1  # the first, then none within the hour of wall time
