@@ -39,9 +39,12 @@ from pydantic import (
     field_validator,
     model_validator,
 )
-from pydantic_core import PydanticCustomError
 
 from estimator.errors import ConfigError, ConfigProblem, QuantityError
+from estimator.errors import ConfigProblems as _Problems
+from estimator.errors import config_error as _error
+from estimator.errors import join_key as _join
+from estimator.errors import raise_problems as _raise_if
 from estimator.units import (
     UNITS_REQUIRED,
     check_quantity,
@@ -96,24 +99,6 @@ _MAX_VESSELS = 20
 _MINUTE = 60.0
 _HOUR = 3600.0
 _DAY = 86400.0
-
-
-class _Problems(ValueError):
-    """Several faults found by one validator, keyed relative to where it runs."""
-
-    def __init__(self, problems: Sequence[tuple[str, str]]) -> None:
-        self.problems = list(problems)
-        super().__init__("; ".join(f"{key}: {reason}" for key, reason in self.problems))
-
-
-def _raise_if(problems: Sequence[tuple[str, str]]) -> None:
-    if problems:
-        raise _Problems(problems)
-
-
-def _error(reason: str) -> PydanticCustomError:
-    # The reason travels as context so that braces in user text are never formatted.
-    return PydanticCustomError("config", "{reason}", {"reason": reason})
 
 
 def _text(value: str, longest: int) -> str:
@@ -1327,14 +1312,6 @@ def _dotted(loc: Sequence[str | int], under_train: set[str]) -> str:
     if loc and isinstance(loc[0], str) and loc[0] in under_train:
         key = f"train.{key}"
     return key
-
-
-def _join(key: str, relative: str) -> str:
-    if not relative:
-        return key
-    if not key or relative.startswith("["):
-        return key + relative
-    return f"{key}.{relative}"
 
 
 def _shown(value: Any) -> str:

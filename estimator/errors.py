@@ -6,17 +6,23 @@ estimator can report on purpose is one of the classes below.
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
+
+from pydantic_core import PydanticCustomError
 
 __all__ = [
     "ConfigError",
     "ConfigProblem",
+    "ConfigProblems",
     "FilterDiverged",
     "ObservabilityWarning",
     "QuantityError",
     "ReadingRefused",
     "StagewatchError",
+    "config_error",
+    "join_key",
+    "raise_problems",
 ]
 
 
@@ -87,3 +93,37 @@ class FilterDiverged(StagewatchError):
 
 class ObservabilityWarning(UserWarning):
     """The configured measurements cannot pin down every estimated state."""
+
+
+# Helpers of the file parsers (estimator.config, service.bridge.config): a pydantic
+# validator reports a fault with :func:`config_error`, or several with
+# :func:`raise_problems`, keyed relative to where it runs; the parser turns them into
+# :class:`ConfigProblem` rows with :func:`join_key`.
+
+
+class ConfigProblems(ValueError):
+    """Several faults found by one validator, keyed relative to where it runs."""
+
+    def __init__(self, problems: Sequence[tuple[str, str]]) -> None:
+        self.problems = list(problems)
+        super().__init__("; ".join(f"{key}: {reason}" for key, reason in self.problems))
+
+
+def raise_problems(problems: Sequence[tuple[str, str]]) -> None:
+    """Raise :class:`ConfigProblems` when there is any (key, reason) pair."""
+    if problems:
+        raise ConfigProblems(problems)
+
+
+def config_error(reason: str) -> PydanticCustomError:
+    """Return a validator's fault in words, shown as given (braces never formatted)."""
+    return PydanticCustomError("config", "{reason}", {"reason": reason})
+
+
+def join_key(key: str, relative: str) -> str:
+    """Dotted key of ``relative`` (``"a.b"`` or ``"[2].c"``) under ``key``."""
+    if not relative:
+        return key
+    if not key or relative.startswith("["):
+        return key + relative
+    return f"{key}.{relative}"

@@ -37,9 +37,12 @@ from pydantic import (
     ValidationInfo,
     model_validator,
 )
-from pydantic_core import PydanticCustomError
 
 from estimator.errors import ConfigError, ConfigProblem, QuantityError
+from estimator.errors import ConfigProblems as _Problems
+from estimator.errors import config_error as _error
+from estimator.errors import join_key as _join
+from estimator.errors import raise_problems as _raise_if
 from estimator.units import DIMENSIONS, UNITS_REQUIRED, quantity, unit_scale_offset
 
 __all__ = [
@@ -64,24 +67,6 @@ _BASE_DIR = "bridge_base_dir"
 _SLUG = re.compile(r"[a-z0-9][a-z0-9_-]{0,63}")
 _SOURCE_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.-]{0,63}")
 SECURITY_POLICIES = ("None", "Basic256Sha256", "Aes128Sha256RsaOaep", "Aes256Sha256RsaPss")
-
-
-class _Problems(ValueError):
-    """Several faults found by one validator, keyed relative to where it runs."""
-
-    def __init__(self, problems: Sequence[tuple[str, str]]) -> None:
-        self.problems = list(problems)
-        super().__init__("; ".join(f"{key}: {reason}" for key, reason in self.problems))
-
-
-def _raise_if(problems: Sequence[tuple[str, str]]) -> None:
-    if problems:
-        raise _Problems(problems)
-
-
-def _error(reason: str) -> PydanticCustomError:
-    # The reason travels as context so that braces in user text are never formatted.
-    return PydanticCustomError("config", "{reason}", {"reason": reason})
 
 
 def _slug(value: str) -> str:
@@ -344,7 +329,7 @@ class CsvFolderSourceConfig(BaseModel):
     def _check(self) -> Self:
         problems: list[tuple[str, str]] = []
         if self.delimiter is not None:
-            if len(self.delimiter) != 1 or self.delimiter in "\r\n\"":
+            if len(self.delimiter) != 1 or self.delimiter in '\r\n"':
                 problems.append(("delimiter", f"must be one character, got {self.delimiter!r}"))
             elif self.delimiter == self.decimal:
                 problems.append(("delimiter", "must differ from the decimal mark"))
@@ -482,9 +467,7 @@ class OpcUaSourceConfig(BaseModel):
         return self
 
 
-SourceConfig = Annotated[
-    CsvFolderSourceConfig | OpcUaSourceConfig, Field(discriminator="kind")
-]
+SourceConfig = Annotated[CsvFolderSourceConfig | OpcUaSourceConfig, Field(discriminator="kind")]
 """One source of readings, told apart by its ``kind``."""
 
 
@@ -739,12 +722,6 @@ def _dotted(loc: Sequence[str | int]) -> str:
         else:
             key = f"{key}.{part}" if key else str(part)
     return key
-
-
-def _join(key: str, relative: str) -> str:
-    if not key:
-        return relative
-    return key + relative if relative.startswith("[") else f"{key}.{relative}"
 
 
 def _reason(error: Mapping[str, Any]) -> str:
