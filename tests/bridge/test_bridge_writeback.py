@@ -105,7 +105,14 @@ def test_estimates_are_published_over_opcua_and_to_csv_and_metrics_count(
                     if any(r["time"] == text for r in csv_rows(estimates_csv)):
                         break
                 published = await read_variables(endpoint, train, names)
-                metrics = (await http.get(f"http://127.0.0.1:{metrics_port}/metrics")).text
+                # The spool gauge follows the forwarder's next pass: wait for it.
+                while True:
+                    metrics = (await http.get(f"http://127.0.0.1:{metrics_port}/metrics")).text
+                    if "stagewatch_bridge_spool_pending 0.0" in metrics:
+                        break
+                    if time.monotonic() >= deadline or task.done():
+                        break
+                    await asyncio.sleep(0.1)
             await asyncio.sleep(0.7)  # a few more publications of the same estimate
             return latest, published, metrics
         finally:
