@@ -598,25 +598,6 @@ PERIODS = {"FI-200": 60.0, "TI-201": 60.0, "TI-202": 60.0, "AI-200G": 120.0, "AI
 LAB = {"LAB-202F": LabSchedule(period=12 * HOUR, first=8 * HOUR, delay=(3 * HOUR, 5 * HOUR))}
 
 
-def replay(scenario: Scenario) -> list[AlertEvent]:
-    """Feed a simulated run to a session and an engine in 1-h batches by arrival."""
-    session = TrainSession(CONFIG)
-    engine = AlertEngine(CONFIG)
-    sim = simulate(session.model, scenario)
-    tags, times, values = sim.columns()
-    tag_array = np.array(tags, dtype=object)
-    events: list[AlertEvent] = []
-    for start in np.arange(0.0, scenario.duration + 1.0, HOUR):
-        part = (sim.received >= start) & (sim.received < start + HOUR)
-        part_tags = tag_array[part].tolist()
-        out = session.ingest(part_tags, times[part], values[part], si=True)
-        health = HealthInput.from_session(
-            session, part_tags, times[part], values[part], out, si=True
-        )
-        events += engine.update(out.estimates, health)
-    return events
-
-
 def feed_hourly(session: TrainSession, scenario: Scenario) -> tuple[list[AlertEvent], Any]:
     """Simulate a scenario and feed its readings to the session in 1-h batches by
     arrival, as a replay would; then judge what is held. (events, simulation)."""
@@ -648,7 +629,7 @@ def test_demo_train_sudden_activity_loss_is_flagged_within_two_residence_times()
         lab=LAB,
         seed=1,
     )
-    events = replay(scenario)
+    events, _ = feed_hourly(TrainSession(CONFIG), scenario)
     raised = [e for e in events if e.to_state == ACTIVE]
     watched = ("conversion_shortfall", "activity")
     first = next(e for e in raised if e.rule.startswith(watched))
@@ -666,7 +647,7 @@ def test_demo_train_sudden_activity_loss_is_flagged_within_two_residence_times()
 
 def test_demo_train_normal_operation_raises_no_conversion_or_activity_alert():
     scenario = Scenario(duration=4 * DAY, analyzer_period=PERIODS, lab=LAB, seed=1)
-    events = replay(scenario)
+    events, _ = feed_hourly(TrainSession(CONFIG), scenario)
     raised = [e for e in events if e.to_state == ACTIVE]
     assert not [e for e in raised if e.rule.startswith(("conversion_shortfall", "activity"))]
 
