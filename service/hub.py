@@ -375,11 +375,16 @@ class Hub:
             session = runtime.session
             codes = session.codes(tags)
             take, refusals = session.screen(codes, t, v, names=tags)
-            # Refused readings are echoed with the value as posted (the tag's unit).
-            refused = [
-                RefusedReading(
-                    index=i, tag=r.tag, time=r.time, value=_json(float(v[i])), reason=r.reason
+
+            def refuse(i: int, reason: str) -> RefusedReading:
+                # Echoed with the value as posted (the tag's unit).
+                value = _json(float(v[i]))
+                return RefusedReading(
+                    index=i, tag=tags[i], time=float(t[i]), value=value, reason=reason
                 )
+
+            refused = [
+                refuse(i, r.reason)
                 for i, r in zip(np.flatnonzero(~take).tolist(), refusals, strict=True)
             ]
             # OPC UA quality: below 64 the source itself calls the value bad.
@@ -392,30 +397,14 @@ class Hub:
                     if bad[i]
                     else f"time in the future beyond the tolerance ({tolerance:g} s)"
                 )
-                refused.append(
-                    RefusedReading(
-                        index=i,
-                        tag=tags[i],
-                        time=float(t[i]),
-                        value=_json(float(v[i])),
-                        reason=reason,
-                    )
-                )
+                refused.append(refuse(i, reason))
             take &= ~bad
             keep = np.flatnonzero(take & ~future)
             rows = [(tags[i], float(t[i]), float(v[i]), qualities[i]) for i in keep.tolist()]
             result = self.store.append_readings(runtime.train_id, rows, received_at=now)
             for j in result.conflicts:
-                i = int(keep[j])
-                refused.append(
-                    RefusedReading(
-                        index=i,
-                        tag=tags[i],
-                        time=float(t[i]),
-                        value=_json(float(v[i])),
-                        reason="a different value is already journaled for this tag and time",
-                    )
-                )
+                reason = "a different value is already journaled for this tag and time"
+                refused.append(refuse(int(keep[j]), reason))
             new = np.asarray(result.new_positions, dtype=np.int64)
             if new.size:
                 sel = keep[new]
