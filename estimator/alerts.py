@@ -272,6 +272,8 @@ class _Rows:
     expected_sums: dict[int, tuple[FloatArray, FloatArray, np.ndarray]] = field(
         default_factory=dict
     )
+    # Which rows join the thinned activity series (AlertEngine._activity_kept).
+    activity_kept: np.ndarray | None = None
 
 
 @dataclass
@@ -733,6 +735,15 @@ class AlertEngine:
         ctx.condition[ev.alert_id] = state
         return [e for e in logged if e is not None]
 
+    def _activity_kept(self, ctx: _Rows) -> np.ndarray:
+        """Mask of the update's rows that join the thinned activity series (once)."""
+        if ctx.activity_kept is None:
+            held = self._activity
+            prev = float(held[-1, 0]) if len(held) else -math.inf
+            step = self.config.alerts.activity_falling.window / _ROWS_PER_WINDOW
+            ctx.activity_kept = _grid_first(ctx.time, prev, step)
+        return ctx.activity_kept
+
     def _remember(self, ctx: _Rows) -> None:
         """Keep what the next update's windows need; forget the rest."""
         rows = ctx.estimates
@@ -741,8 +752,7 @@ class AlertEngine:
         a = self.config.alerts
         # One row per interval of the activity and expectation series (see
         # _ROWS_PER_WINDOW); the rules evaluate the same thinned series.
-        prev = float(self._activity[-1, 0]) if len(self._activity) else -math.inf
-        keep = _grid_first(ctx.time, prev, a.activity_falling.window / _ROWS_PER_WINDOW)
+        keep = self._activity_kept(ctx)
         act = np.column_stack([ctx.time, rows.activity, rows.activity_std])[keep]
         self._activity = np.concatenate([self._activity, act])
         self._activity = self._activity[self._activity[:, 0] >= now - a.activity_falling.window]
@@ -985,8 +995,7 @@ class AlertEngine:
             # The slope runs over the thinned series (one row per window/720): at a
             # row that opens an interval it is computed; the others carry it on.
             held = self._activity
-            prev = float(held[-1, 0]) if len(held) else -math.inf
-            keep = _grid_first(ctx.time, prev, fall.window / _ROWS_PER_WINDOW)
+            keep = self._activity_kept(ctx)
             t = np.concatenate([held[:, 0], ctx.time[keep]])
             y = np.concatenate([held[:, 1], act[keep]])
             s = np.concatenate([held[:, 2], std[keep]])
