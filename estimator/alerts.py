@@ -12,6 +12,8 @@ plant time:
   of a least-squares line over a window and the slope's standard error;
 - ``tag_stale``, ``tag_frozen``, ``tag_spikes``, per tag, and ``model_mismatch``
   for the train: the estimator's health, from a :class:`HealthInput`;
+- ``estimator_reinitialised``: the filter diverged and was started again from the
+  model (``estimator.divergence``); active while the estimates settle;
 - ``flow_low`` and ``temperature_range`` (per vessel): inputs outside where the
   model holds.
 
@@ -529,6 +531,13 @@ class AlertEngine:
         warning, high, advisory = Priority.WARNING, Priority.HIGH, Priority.ADVISORY
         specs: list[tuple[str, Any, Priority, list[str], str]] = [
             ("model_mismatch", a.model_mismatch, advisory, train, "Analyzers and model disagree"),
+            (
+                "estimator_reinitialised",
+                a.estimator_reinitialised,
+                warning,
+                train if cfg.estimator.divergence.enabled else [],
+                "Estimator re-initialised after diverging",
+            ),
             ("tag_stale", a.tag_stale, advisory, tags, "{} readings stale"),
             ("tag_frozen", a.tag_frozen, advisory, unlabbed, "{} output frozen"),
             ("tag_spikes", a.tag_spikes, advisory, tags, "{} readings rejected"),
@@ -819,6 +828,7 @@ class AlertEngine:
         if self._health_since is not None:
             yield from (e for e in self._health(ctx) if e.alert_id in book)
         yield from (e for e in self._inputs(ctx) if e.alert_id in book)
+        yield from (e for e in self._reinitialised(ctx) if e.alert_id in book)
         yield from (e for e in self._activity_rules(ctx) if e.alert_id in book)
         yield from (e for e in self._shortfall(ctx) if e.alert_id in book)
 
@@ -1306,6 +1316,42 @@ class AlertEngine:
             return f"{figures}: {cause}."
 
         return _Eval(f"model_mismatch:{self.config.name}", on, off, per, threshold, "", describe)
+
+    def _reinitialised(self, ctx: _Rows) -> Iterator[_Eval]:
+        rule = self.config.alerts.estimator_reinitialised
+        watch = self.config.estimator.divergence
+        if not rule.enabled:
+            return
+        rows = ctx.estimates
+        since = ctx.time - rows.reset_time  # NaN before any re-initialisation
+        on = since < rule.settle
+        ratio = np.asarray(rows.reset_nis, dtype=np.float64)
+
+        def describe(m: int, active: bool) -> str:
+            when = format_time(float(rows.reset_time[m]))
+            if not active:
+                return (
+                    f"The estimates have had {_duration(rule.settle)} to settle since the "
+                    f"re-initialisation at {when}."
+                )
+            return (
+                f"The estimator lost the plant and was started again from the design model "
+                f"at {when}: over about the last {_duration(watch.window)} its analyzers "
+                f"disagreed with it by a mean NIS per degree of freedom of {ratio[m]:.1f} "
+                f"(limit {watch.nis_ratio:g}). Its estimates are settling for about "
+                f"{_duration(rule.settle)}: judge them with care, and look for the cause (a "
+                "sudden upset, an analyzer out of calibration, kinetics no longer right)."
+            )
+
+        yield _Eval(
+            f"estimator_reinitialised:{self.config.name}",
+            on,
+            ~on,
+            ratio,
+            np.full(len(ctx.time), watch.nis_ratio),
+            "",
+            describe,
+        )
 
     def _show_flow(self, q: float) -> str:
         unit, scale, offset = self._units.get(self.config.feed.flow.tag, ("m^3/s", 1.0, 0.0))

@@ -594,6 +594,58 @@ class InitialStd(BaseModel):
     bias: Annotated[float, quantity("concentration", ge=0.0, difference=True)] = 20.0
 
 
+class DivergenceWatch(BaseModel):
+    """When the filter has lost the plant, and is started again from the model.
+
+    Per analyzer (measurement group), every update's NIS capped at its gate (a
+    gated reading counts as the gate, so one wild spike weighs no more than a
+    just-rejected reading), its signed normalised innovation ``nu / sqrt(S)`` (of
+    that capped size) and its degrees of freedom are summed with weights that fade
+    as exp(-age / window). The filter has diverged when one analyzer's readings fall
+    both far from the predictions and on one side of them: its faded mean NIS per
+    degree of freedom exceeds ``nis_ratio`` and its faded mean signed innovation
+    exceeds ``bias`` in size, over at least ``min_dof`` faded degrees of freedom,
+    and at least one window has passed since the filter started or was last
+    re-initialised. It is then re-initialised as at start-up, from the design
+    steady state at the inputs held then with the start-up uncertainty, and the
+    time is recorded (the ``estimator_reinitialised`` alert).
+
+    Why these figures: a consistent filter's normalised innovations have mean 0
+    and variance 1, its NIS mean 1 per degree of freedom (Bar-Shalom, Li &
+    Kirubarajan 2001, sec. 5.4); faded sums with weight W have about 2W effective
+    samples, so at ``min_dof`` 10 the mean signed innovation has a 1-sigma of about
+    0.22, and 1.5 lies near 7 sigma out. A spiky analyzer's rejections fall on
+    both sides and leave the signed mean near 0; a filter that has lost the plant
+    gates reading after reading on the same side, with the persistence rule's steps
+    (NIS about 1) between them. Model mismatch milder than this is the
+    ``model_mismatch`` alert's business, not a reason to start again.
+
+    Attributes
+    ----------
+    enabled : bool
+        Watch for divergence; default true.
+    window : float
+        Fading time constant of the sums, and the least time between two
+        re-initialisations [s]; default 2 h.
+    nis_ratio : float
+        Mean NIS per degree of freedom above which an analyzer shows divergence
+        [-]; default 4; above 1.
+    bias : float
+        Mean signed normalised innovation above which (in size) its readings fall
+        on one side [-]; default 1.5.
+    min_dof : float
+        Least faded degrees of freedom of the analyzer to judge [-]; default 10.
+    """
+
+    model_config = _MODEL
+
+    enabled: StrictBool = True
+    window: Annotated[float, quantity("time", gt=0.0)] = 2 * _HOUR
+    nis_ratio: Annotated[float, quantity("dimensionless", gt=1.0)] = 4.0
+    bias: Annotated[float, quantity("dimensionless", gt=0.0)] = 1.5
+    min_dof: Annotated[float, quantity("dimensionless", ge=1.0)] = 10.0
+
+
 class EstimatorConfig(BaseModel):
     """Filter tuning.
 
@@ -618,6 +670,8 @@ class EstimatorConfig(BaseModel):
         Process noise of each kind of state.
     initial_std : InitialStd
         Start-up uncertainty of each kind of state.
+    divergence : DivergenceWatch
+        When to re-initialise a filter that has lost the plant.
     """
 
     model_config = _MODEL
@@ -632,6 +686,7 @@ class EstimatorConfig(BaseModel):
     feed_noise: ConcentrationWalk = ConcentrationWalk(sigma=30.0, per=_HOUR)
     bias_noise: ConcentrationWalk = ConcentrationWalk(sigma=1.0, per=_HOUR)
     initial_std: InitialStd = InitialStd()
+    divergence: DivergenceWatch = DivergenceWatch()
 
 
 class ConversionShortfallAlert(BaseModel):
@@ -892,6 +947,31 @@ class ModelMismatchAlert(BaseModel):
     off_delay: Annotated[float, quantity("time", ge=0.0)] = 30 * _MINUTE
 
 
+class ReinitialisedAlert(BaseModel):
+    """The filter diverged and was started again from the model.
+
+    Active from the re-initialisation (``estimator.divergence``) for ``settle``,
+    while the estimates converge again; the event stays in the alert log until an
+    operator acknowledges it. Registered only when the divergence watch is on.
+
+    Attributes
+    ----------
+    enabled : bool
+        Evaluate this rule.
+    settle : float
+        How long the estimates are announced as settling [s]; default 2 h.
+    on_delay, off_delay : float
+        [s]; defaults 0 and 0 (the re-initialisation is a fact, not a noisy figure).
+    """
+
+    model_config = _MODEL
+
+    enabled: StrictBool = True
+    settle: Annotated[float, quantity("time", gt=0.0)] = 2 * _HOUR
+    on_delay: Annotated[float, quantity("time", ge=0.0)] = 0.0
+    off_delay: Annotated[float, quantity("time", ge=0.0)] = 0.0
+
+
 class FlowLowAlert(BaseModel):
     """The feed flow is near zero: below a fraction of its nominal value.
 
@@ -954,6 +1034,7 @@ class AlertsConfig(BaseModel):
     tag_frozen : TagFrozenAlert
     tag_spikes : TagSpikesAlert
     model_mismatch : ModelMismatchAlert
+    estimator_reinitialised : ReinitialisedAlert
     flow_low : FlowLowAlert
     temperature_range : TemperatureRangeAlert
     max_shelve : float
@@ -975,6 +1056,7 @@ class AlertsConfig(BaseModel):
     tag_frozen: TagFrozenAlert = TagFrozenAlert()
     tag_spikes: TagSpikesAlert = TagSpikesAlert()
     model_mismatch: ModelMismatchAlert = ModelMismatchAlert()
+    estimator_reinitialised: ReinitialisedAlert = ReinitialisedAlert()
     flow_low: FlowLowAlert = FlowLowAlert()
     temperature_range: TemperatureRangeAlert = TemperatureRangeAlert()
     max_shelve: Annotated[float, quantity("time", gt=0.0)] = 24 * _HOUR

@@ -15,7 +15,6 @@ __all__ = [
     "ConfigError",
     "ConfigProblem",
     "ConfigProblems",
-    "FilterDiverged",
     "ObservabilityWarning",
     "QuantityError",
     "ReadingRefused",
@@ -85,10 +84,6 @@ class ReadingRefused(StagewatchError):
 
     def __str__(self) -> str:
         return f"reading of tag {self.tag!r} refused: {self.reason}"
-
-
-class FilterDiverged(StagewatchError):
-    """The filter's state or covariance stopped being finite or positive definite."""
 
 
 class ObservabilityWarning(UserWarning):

@@ -51,6 +51,8 @@ from numpy.typing import ArrayLike
 from scipy.stats import chi2
 
 from estimator.model import (
+    FP_ACTIVITY,
+    IP_ACTIVITY,
     IP_FEED,
     IP_N,
     IP_REACTANT,
@@ -58,6 +60,7 @@ from estimator.model import (
     FloatArray,
     IntArray,
     TrainModel,
+    steady_concentrations_into,
 )
 from estimator.propagate import propagate_into, workspace
 
@@ -76,6 +79,20 @@ STATUS_GATED = 2
 STATUS_STEP = 3  # accepted as a real step after persistent gating
 
 _MAX_GROUP = 8
+
+# The divergence monitor (run_events' ``monitor``, one row per measurement group and
+# a last row for the train). A group's row: faded sums of its capped NIS, of its
+# signed normalised innovation and of its degrees of freedom, and the time they were
+# faded to. The last row: the start of the current watch, and the time, mean NIS per
+# degree of freedom and group of the last re-initialisation (NaN before any).
+MON_NIS, MON_Z, MON_DOF, MON_T = range(4)
+MON_SINCE, MON_RESET_T, MON_RESET_NIS, MON_RESET_GROUP = range(4)
+MON_WIDTH = 4
+# Its settings (run_events' ``diverge``): window [s] (0 = off), mean NIS per degree of
+# freedom and mean signed normalised innovation above which a group shows the filter
+# diverged [-], least faded degrees of freedom [-], and the flow used for the steady
+# state when the flow is zero [m^3/s].
+DIV_WINDOW, DIV_RATIO, DIV_BIAS, DIV_MIN_DOF, DIV_FLOW = range(5)
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -376,6 +393,49 @@ def conversion_into(
 
 
 @numba.njit(cache=True, error_model="numpy")
+def reinitialise(
+    x: FloatArray,
+    cov: FloatArray,
+    u: FloatArray,
+    ip: IntArray,
+    fp: FloatArray,
+    init_var: FloatArray,
+    m_bias: IntArray,
+    nominal_flow: float,
+) -> None:
+    """Start the filter again from the model at the inputs held now, in place.
+
+    As at start-up: the vessels at the design model's steady state (design activity,
+    the flow held, or ``nominal_flow`` [m^3/s] when it is zero, the temperatures
+    held, the feed from its state estimates, else its inputs), the activity at
+    design, biases 0 and the covariance ``diag(init_var)``. Feed states keep their
+    estimates (clipped at 0): the inlet analyzer reads them directly.
+    """
+    n_vessels = ip[IP_N]
+    n_species = ip[IP_S]
+    feed = np.empty(n_species)
+    for s in range(n_species):
+        i_feed = ip[IP_FEED + s]
+        if i_feed >= 0:
+            x[i_feed] = max(x[i_feed], 0.0)
+            feed[s] = x[i_feed]
+        else:
+            feed[s] = u[1 + n_vessels + s]
+    flow = u[0] if u[0] > 0.0 else nominal_flow
+    conc = np.empty(n_vessels * n_species)
+    steady_concentrations_into(flow, u[1 : 1 + n_vessels], feed, fp[FP_ACTIVITY], ip, fp, conc)
+    x[: n_vessels * n_species] = conc
+    if ip[IP_ACTIVITY] >= 0:
+        x[ip[IP_ACTIVITY]] = fp[FP_ACTIVITY]
+    for j in range(m_bias.shape[0]):
+        if m_bias[j] >= 0:
+            x[m_bias[j]] = 0.0
+    cov[:, :] = 0.0
+    for i in range(x.shape[0]):
+        cov[i, i] = init_var[i]
+
+
+@numba.njit(cache=True, error_model="numpy")
 def run_events(
     x: FloatArray,
     cov: FloatArray,
@@ -398,6 +458,9 @@ def run_events(
     lower: IntArray,
     persist: int,
     streak: IntArray,
+    init_var: FloatArray,
+    diverge: FloatArray,
+    monitor: FloatArray,
     snap_every: float,
     snap_last: float,
     ev_status: IntArray,
@@ -414,6 +477,8 @@ def run_events(
     snap_cov: FloatArray,
     snap_u: FloatArray,
     snap_streak: IntArray,
+    snap_monitor: FloatArray,
+    out_reset: FloatArray,
 ) -> tuple[float, int, int, float]:
     """Run the filter over events ``start..stop-1`` of a time-ordered log.
 
@@ -430,6 +495,20 @@ def run_events(
     measured states' variances are widened until its NIS is 1 and it is applied
     (status ``STATUS_STEP``). Spikes come alone and stay gated.
 
+    ``monitor`` (see ``MON_*``) watches each measurement group for divergence with
+    ``diverge`` (see ``DIV_*``): every update adds its NIS capped at its gate, its
+    signed normalised innovation ``sign(nu_0) * sqrt(capped NIS / m)`` (``nu / sqrt(S)``
+    for one reading) and its degrees of freedom m to the group's sums, which fade
+    with time constant ``diverge[DIV_WINDOW]``. When, after an update, at least a
+    window has passed since the start (or the last re-initialisation), the group's
+    faded degrees of freedom reach ``diverge[DIV_MIN_DOF]``, its mean NIS per degree
+    of freedom exceeds ``diverge[DIV_RATIO]`` and its mean signed innovation exceeds
+    ``diverge[DIV_BIAS]`` in size (the readings fall far and on one side), the filter
+    is re-initialised from the model (:func:`reinitialise`) once that time's events
+    are done, before its output row; the row and every later one carry the time and
+    the mean NIS of the last re-initialisation in ``out_reset`` (NaN before any). A
+    window of 0 turns this off.
+
     Returns (time reached, output rows written, snapshots written, last snapshot time).
     """
     n = x.shape[0]
@@ -445,6 +524,7 @@ def run_events(
     grp_z = np.empty(_MAX_GROUP)
     grp_var = np.empty(_MAX_GROUP)
     grp_innov = np.empty(_MAX_GROUP)
+    suspect = -1  # a measurement group that shows the filter diverged, at this time
     while k < stop:
         te = ev_t[k]
         if te > t:
@@ -501,12 +581,40 @@ def run_events(
                 side = 1 if grp_innov[0] > 0.0 else -1
                 streak[group] = run + side if run * side > 0 else side
             symmetrize(cov)
+            if diverge[DIV_WINDOW] > 0.0:
+                row = monitor[group]
+                fade = math.exp(-(te - row[MON_T]) / diverge[DIV_WINDOW])
+                capped = min(nis, gates[m - 1])
+                z = math.sqrt(capped / m)
+                row[MON_NIS] = row[MON_NIS] * fade + capped
+                row[MON_Z] = row[MON_Z] * fade + (z if grp_innov[0] > 0.0 else -z)
+                row[MON_DOF] = row[MON_DOF] * fade + m
+                row[MON_T] = te
+                if (
+                    te - monitor[-1, MON_SINCE] >= diverge[DIV_WINDOW]
+                    and row[MON_DOF] >= diverge[DIV_MIN_DOF]
+                    and row[MON_NIS] > diverge[DIV_RATIO] * row[MON_DOF]
+                    and abs(row[MON_Z]) > diverge[DIV_BIAS] * row[MON_DOF]
+                ):
+                    suspect = group
             for a in range(m):
                 ev_status[k + a] = status
                 ev_nis[k + a] = nis
                 ev_innov[k + a] = grp_innov[a]
             k = k2
         if k >= stop or ev_t[k] != te:
+            if suspect >= 0:
+                train = monitor[-1]
+                train[MON_SINCE] = te
+                train[MON_RESET_T] = te
+                train[MON_RESET_NIS] = monitor[suspect, MON_NIS] / monitor[suspect, MON_DOF]
+                train[MON_RESET_GROUP] = suspect
+                monitor[:-1, :MON_T] = 0.0
+                reinitialise(x, cov, u, ip, fp, init_var, m_bias, diverge[DIV_FLOW])
+                streak[:] = 0
+                suspect = -1
+            out_reset[n_out, 0] = monitor[-1, MON_RESET_T]
+            out_reset[n_out, 1] = monitor[-1, MON_RESET_NIS]
             out_t[n_out] = te
             for i in range(n):
                 out_x[n_out, i] = x[i]
@@ -522,6 +630,7 @@ def run_events(
                 snap_cov[n_snap, :, :] = cov
                 snap_u[n_snap, :] = u
                 snap_streak[n_snap, :] = streak
+                snap_monitor[n_snap, :, :] = monitor
                 n_snap += 1
                 snap_last = te
     return t, n_out, n_snap, snap_last
@@ -576,7 +685,9 @@ class FilterRun:
     1-sigma; ``inputs`` (k, 1 + N + S) the inputs held at each time.
     ``refused`` lists readings that were not taken. ``events`` holds the (re)run
     span of the event log (see :meth:`CascadeFilter.events`), so a caller can record
-    gated readings.
+    gated readings. ``reset_time`` and ``reset_nis`` (k,) give, at each row, the time
+    [s] and the mean NIS per degree of freedom [-] of the last re-initialisation
+    after divergence (NaN before any).
     """
 
     times: FloatArray
@@ -588,6 +699,8 @@ class FilterRun:
     refused: list[Refusal] = field(default_factory=list)
     rewound_to: float | None = None
     events: dict[str, np.ndarray] | None = None
+    reset_time: FloatArray = field(default_factory=lambda: np.empty(0))
+    reset_nis: FloatArray = field(default_factory=lambda: np.empty(0))
 
     @classmethod
     def empty(cls, model: TrainModel, refused: list[Refusal]) -> FilterRun:
@@ -734,6 +847,15 @@ class CascadeFilter:
             bounded.append(lay.activity)
         bounded += [i for i in lay.feed if i >= 0]
         self._lower = np.array(sorted(bounded), dtype=np.int64)
+        self._init_var = model.initial_std**2
+        watch = cfg.estimator.divergence
+        self._diverge = np.zeros(5)
+        if watch.enabled:
+            self._diverge[DIV_WINDOW] = watch.window
+            self._diverge[DIV_RATIO] = watch.nis_ratio
+            self._diverge[DIV_BIAS] = watch.bias
+            self._diverge[DIV_MIN_DOF] = watch.min_dof
+        self._diverge[DIV_FLOW] = cfg.feed.flow.nominal
 
         self.initialized = False
         # Time of the first snapshot ever (the history's start); events at it follow it.
@@ -755,6 +877,8 @@ class CascadeFilter:
         self._snap_cov = np.empty((0, lay.n, lay.n))
         self._snap_u = np.empty((0, model.n_inputs))
         self._snap_streak = np.empty((0, len(defs)), dtype=np.int64)
+        self._snap_monitor = np.empty((0, len(defs) + 1, MON_WIDTH))
+        self._monitor = _fresh_monitor(len(defs), -math.inf)
         self._persist = cfg.estimator.step_persistence
         # The current state below is the state after log positions [0, _live_pos).
         self._live_pos = 0
@@ -960,7 +1084,7 @@ class CascadeFilter:
         lag = max((d.dead_time for d in self.measurements), default=0.0)
         t0 = float(pending[0, 0]) - lag
         self.x = self.model.steady_state(u0)
-        self.cov = np.diag(self.model.initial_std**2)
+        self.cov = np.diag(self._init_var)
         self.u = u0
         self.t = t0
         self._origin = t0
@@ -972,6 +1096,8 @@ class CascadeFilter:
         self._snap_cov = self.cov[None, :, :].copy()
         self._snap_u = self.u[None, :].copy()
         self._snap_streak = np.zeros((1, len(self.measurements)), dtype=np.int64)
+        self._monitor = _fresh_monitor(len(self.measurements), t0)
+        self._snap_monitor = self._monitor[None, :].copy()
         self._live_pos = 0
         self._streak = np.zeros(len(self.measurements), dtype=np.int64)
         self.initialized = True
@@ -1051,6 +1177,7 @@ class CascadeFilter:
             start = self._live_pos
             x, cov, u = self.x.copy(), self.cov.copy(), self.u.copy()
             streak = self._streak.copy()
+            monitor = self._monitor.copy()
             t = self.t
             keep = len(self._snap_t)
             # A snapshot closes its time (it follows every event at that time): new
@@ -1080,6 +1207,7 @@ class CascadeFilter:
             cov = self._snap_cov[s].copy()
             u = self._snap_u[s].copy()
             streak = self._snap_streak[s].copy()
+            monitor = self._snap_monitor[s].copy()
             t = float(self._snap_t[s])
             keep = s + 1
             snap_last = float(self._snap_t[s])
@@ -1100,15 +1228,18 @@ class CascadeFilter:
         snap_cov = np.empty((cap, n, n))
         snap_u = np.empty((cap, self.model.n_inputs))
         snap_streak = np.empty((cap, len(self.measurements)), dtype=np.int64)
+        snap_monitor = np.empty((cap, *self._monitor.shape))
+        out_reset = np.empty((count, 2))
         t, n_out, n_snap, _ = run_events(
             x, cov, u, t,
             self._ev_t, self._ev_kind, self._ev_idx, self._ev_val, start, stop,
             self.model.ip, self.model.fp, self.model.process_noise,
             self._m_state, self._m_bias, self._m_var, self._m_group, self._gates, self._lower,
-            self._persist, streak, self.snapshot_interval, snap_last,
+            self._persist, streak, self._init_var, self._diverge, monitor,
+            self.snapshot_interval, snap_last,
             self._ev_status, self._ev_nis, self._ev_innov,
             out_t, out_x, out_var, out_conv, out_u,
-            snap_pos, snap_t, snap_x, snap_cov, snap_u, snap_streak,
+            snap_pos, snap_t, snap_x, snap_cov, snap_u, snap_streak, snap_monitor, out_reset,
         )  # fmt: skip
         self._snap_pos = np.concatenate([self._snap_pos[:keep], snap_pos[:n_snap]])
         self._snap_t = np.concatenate([self._snap_t[:keep], snap_t[:n_snap]])
@@ -1116,8 +1247,10 @@ class CascadeFilter:
         self._snap_cov = np.concatenate([self._snap_cov[:keep], snap_cov[:n_snap]])
         self._snap_u = np.concatenate([self._snap_u[:keep], snap_u[:n_snap]])
         self._snap_streak = np.concatenate([self._snap_streak[:keep], snap_streak[:n_snap]])
+        self._snap_monitor = np.concatenate([self._snap_monitor[:keep], snap_monitor[:n_snap]])
         self.x, self.cov, self.u, self.t = x, cov, u, t
         self._streak = streak
+        self._monitor = monitor
         self._live_pos = stop
         return FilterRun(
             out_t[:n_out],
@@ -1129,6 +1262,8 @@ class CascadeFilter:
             [],
             rewound,
             self.events(start, stop),
+            out_reset[:n_out, 0],
+            out_reset[:n_out, 1],
         )
 
     def _extend_back(self, earliest: float) -> None:
@@ -1214,6 +1349,7 @@ class CascadeFilter:
         self._snap_cov = self._snap_cov[sel]
         self._snap_u = self._snap_u[sel]
         self._snap_streak = self._snap_streak[sel]
+        self._snap_monitor = self._snap_monitor[sel]
         self._live_pos -= cut
         for name in _LOG:
             setattr(self, name, getattr(self, name)[cut:].copy())
@@ -1275,8 +1411,16 @@ _STATE = (
     "t", "x", "cov", "u", "_pending", "_origin",
     "_ev_t", "_ev_kind", "_ev_idx", "_ev_val", "_ev_status", "_ev_nis", "_ev_innov",
     "_snap_pos", "_snap_t", "_snap_x", "_snap_cov", "_snap_u", "_snap_streak",
-    "_live_pos", "_streak",
+    "_snap_monitor", "_live_pos", "_streak", "_monitor",
 )  # fmt: skip
+
+
+def _fresh_monitor(groups: int, since: float) -> FloatArray:
+    """Return a divergence monitor of ``groups`` groups, empty, watching from ``since`` [s]."""
+    monitor = np.zeros((groups + 1, MON_WIDTH))
+    monitor[:-1, MON_T] = since
+    monitor[-1] = (since, math.nan, math.nan, math.nan)
+    return monitor
 
 
 def _sorted_unique(events: FloatArray) -> FloatArray:

@@ -482,27 +482,44 @@ def steady_concentrations(
     For first order A -> B this gives ``C_A,n = C_A0 prod_j 1/(1 + k_j tau_j)``
     (Levenspiel, 3rd ed., Eq. 6.6 for equal vessels; the product form for unequal ones).
     """
-    n_vessels = int(ip[IP_N])
-    ia = int(ip[IP_REACTANT])
-    ib = int(ip[IP_PRODUCT])
-    reversible = bool(ip[IP_REVERSIBLE])
-    out = np.empty(n_vessels * len(feed))
-    inlet = np.array(feed, dtype=np.float64)
+    feed = np.asarray(feed, dtype=np.float64)
+    out = np.empty(int(ip[IP_N]) * len(feed))
+    steady_concentrations_into(
+        float(flow), np.asarray(temperatures, dtype=np.float64), feed, float(activity), ip, fp, out
+    )
+    return out
+
+
+@numba.njit(cache=True, error_model="numpy")
+def steady_concentrations_into(
+    flow: float,
+    temperatures: FloatArray,
+    feed: FloatArray,
+    activity: float,
+    ip: IntArray,
+    fp: FloatArray,
+    out: FloatArray,
+) -> None:
+    """Compiled body of :func:`steady_concentrations`, written into ``out`` (N*S,)."""
+    n_vessels = ip[IP_N]
+    n_species = feed.shape[0]
+    ia = ip[IP_REACTANT]
+    ib = ip[IP_PRODUCT]
+    reversible = ip[IP_REVERSIBLE] == 1
+    inlet = feed.copy()
     for i in range(n_vessels):
-        temperature = float(temperatures[i])
-        k = activity * arrhenius(fp[FP_K_REF], fp[FP_T_REF], fp[FP_EA], temperature)
-        k_eq = equilibrium_constant(fp[FP_K_EQ_REF], fp[FP_T_REF], fp[FP_DH], temperature)
+        temperature = temperatures[i]
+        k = activity * _arrhenius(fp[FP_K_REF], fp[FP_T_REF], fp[FP_EA], temperature)
+        k_eq = _arrhenius(fp[FP_K_EQ_REF], fp[FP_T_REF], fp[FP_DH], temperature)
         k_rev = k / k_eq if reversible else 0.0
         dilution = flow / fp[FP_VOLUME + i]
-        c = inlet.copy()
         # (d + k) C_A - k_rev C_B = d A_in and -k C_A + (d + k_rev) C_B = d B_in, by
         # Cramer's rule with the common factor d cancelled, so that d -> 0 (no flow)
         # tends to the equilibrium of the vessel's contents without a singular solve.
         total = dilution + k + k_rev
+        a_in, b_in = inlet[ia], inlet[ib]
         if total > 0.0:
-            a_in, b_in = inlet[ia], inlet[ib]
-            c[ia] = ((dilution + k_rev) * a_in + k_rev * b_in) / total
-            c[ib] = (k * a_in + (dilution + k) * b_in) / total
-        out[i * len(feed) : (i + 1) * len(feed)] = c
-        inlet = c
-    return out
+            inlet[ia] = ((dilution + k_rev) * a_in + k_rev * b_in) / total
+            inlet[ib] = (k * a_in + (dilution + k) * b_in) / total
+        for s in range(n_species):
+            out[i * n_species + s] = inlet[s]

@@ -62,6 +62,10 @@ class EstimateBatch:
         Feed concentration the model used [mol/m^3].
     inputs : ndarray, shape (k, 1 + N + S)
         Flow, temperatures and feed in SI [m^3/s, K, mol/m^3].
+    reset_time, reset_nis : ndarray, shape (k,)
+        When the filter was last re-initialised after diverging [s since the
+        epoch], and the mean NIS per degree of freedom that judged it diverged [-];
+        NaN before any re-initialisation (``estimator.divergence``).
     """
 
     time: FloatArray
@@ -74,6 +78,8 @@ class EstimateBatch:
     activity_std: FloatArray
     feed: FloatArray
     inputs: FloatArray
+    reset_time: FloatArray
+    reset_nis: FloatArray
 
     def __len__(self) -> int:
         return int(self.time.shape[0])
@@ -91,7 +97,7 @@ class EstimateBatch:
 
 
 _FIELDS = tuple(EstimateBatch.__dataclass_fields__)
-_CHECKPOINT_FORMAT = 2
+_CHECKPOINT_FORMAT = 3
 
 
 @dataclass(frozen=True)
@@ -437,6 +443,8 @@ class TrainSession:
             activity_std=activity_std,
             feed=inputs[:, 1 + n_v :],
             inputs=inputs,
+            reset_time=run.reset_time,
+            reset_nis=run.reset_nis,
         )
         gated, steps, nis = self._events(run)
         return SessionOutput(estimates, gated, steps, run.refused, nis, run.rewound_to)

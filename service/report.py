@@ -102,11 +102,18 @@ RULE_KINDS = {
     "tag_frozen": "health",
     "tag_spikes": "health",
     "model_mismatch": "health",
+    "estimator_reinitialised": "health",
     "flow_low": "inputs",
     "temperature_range": "inputs",
 }
 # Rules about the whole train, drawn on every conversion plot and the activity plot.
-_TRAIN_RULES = ("activity_low", "activity_falling", "model_mismatch", "flow_low")
+_TRAIN_RULES = (
+    "activity_low",
+    "activity_falling",
+    "model_mismatch",
+    "estimator_reinitialised",
+    "flow_low",
+)
 _TAG_RULES = ("tag_stale", "tag_frozen", "tag_spikes")
 _TIMELINE_ROWS = 30
 

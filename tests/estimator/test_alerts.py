@@ -65,9 +65,12 @@ def stream(
     activity_std: Any = 0.01,
     flow: Any = None,
     temperature: Any = None,
+    reset_time: Any = np.nan,
+    reset_nis: Any = np.nan,
 ) -> EstimateBatch:
     """Estimates every ``step`` from ``start`` [min after T0]; arguments are scalars,
-    per-row arrays or callables of the time in minutes; the shortfall is R-202's."""
+    per-row arrays or callables of the time in minutes; the shortfall is R-202's;
+    ``reset_time`` is in epoch seconds."""
     t_min = start + np.arange(0.0, minutes, step / MINUTE)
     k = len(t_min)
 
@@ -94,6 +97,8 @@ def stream(
         activity_std=col(activity_std),
         feed=np.tile([2400.0, 0.0], (k, 1)),
         inputs=inputs,
+        reset_time=col(reset_time),
+        reset_nis=col(reset_nis),
     )
 
 

@@ -123,6 +123,8 @@ def test_revision_buffer_replaces_revised_rows_and_releases_in_order():
             activity_std=np.zeros(k),
             feed=np.zeros((k, 1)),
             inputs=np.zeros((k, 3)),
+            reset_time=np.full(k, np.nan),
+            reset_nis=np.full(k, np.nan),
         )
 
     buf = RevisionBuffer()
