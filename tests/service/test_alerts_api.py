@@ -44,19 +44,28 @@ ACTIVITY_LOW = f"activity_low:{NAME}"
 Batch = list[dict[str, Any]]
 
 
-def loss_batches(end: float, hours: float = 12.0, after: float = 0.0) -> list[Batch]:
+def loss_batches(
+    end: float,
+    hours: float = 12.0,
+    after: float = 0.0,
+    *,
+    loss: float = 0.25,
+    loss_at: float = 4 * HOUR,
+    seed: int = 2,
+) -> list[Batch]:
     """Simulated readings in tag units, hour by hour, the last at ``end - 1 + after``.
 
-    ``after`` [s] extends the run past ``end`` (readings stamped in the future).
+    ``after`` [s] extends the run past ``end`` (readings stamped in the future); the
+    activity falls by ``loss`` at ``loss_at`` [s from the start].
     """
     session = TrainSession(load_train_config(DEMO))
     duration = hours * HOUR + after
     scenario = Scenario(
         duration=duration,
-        activity=Profile(((0.0, 1.0), (4 * HOUR, 1.0), (4 * HOUR, 0.75))),
+        activity=Profile(((0.0, 1.0), (loss_at, 1.0), (loss_at, 1.0 - loss))),
         analyzer_period={"AI-203G": 240.0, "AI-200G": 120.0, "LAB-202F": 12 * HOUR},
     )
-    tags, times, values = simulate(session.model, scenario, seed=2).columns()
+    tags, times, values = simulate(session.model, scenario, seed=seed).columns()
     units = dict(zip(session.tags, session.units, strict=True))
     native = values.copy()
     for i, tag in enumerate(tags):
