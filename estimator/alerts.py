@@ -86,6 +86,7 @@ __all__ = [
     "ExpectedConversion",
     "HealthInput",
     "Priority",
+    "carried_expectation",
     "design_expectation",
 ]
 
@@ -96,6 +97,16 @@ _STATE_FORMAT = 2
 
 ExpectedConversion = Callable[["EstimateBatch"], FloatArray]
 """What each vessel should convert at each estimate: batch -> array (k, N) [-]."""
+
+
+def carried_expectation(estimates: EstimateBatch) -> FloatArray:
+    """Return the expectation each row already carries, ``design_conversion`` (k, N) [-].
+
+    A :class:`~estimator.session.TrainSession` fills that column with the
+    expectation the train's ``conversion_shortfall.expectation`` asks for, so the
+    rules judge what the API and the dashboard show.
+    """
+    return np.asarray(estimates.design_conversion, dtype=np.float64)
 
 
 def design_expectation(estimates: EstimateBatch) -> FloatArray:
@@ -482,14 +493,15 @@ class AlertEngine:
 
     def __init__(self, config: TrainConfig, *, expected: ExpectedConversion | None = None) -> None:
         self.config = config
+        dynamic = config.alerts.conversion_shortfall.expectation == "dynamic"
         if expected is None:
-            dynamic = config.alerts.conversion_shortfall.expectation == "dynamic"
             expected = DesignTwin(TrainModel.from_config(config)) if dynamic else None
         self.expected: ExpectedConversion = expected or design_expectation
         # What messages call the expectation.
-        if self.expected is design_expectation:
+        carried = self.expected is carried_expectation
+        if self.expected is design_expectation or (carried and not dynamic):
             self._expectation = "design"
-        elif isinstance(self.expected, DesignTwin):
+        elif isinstance(self.expected, DesignTwin) or carried:
             self._expectation = "design model's"
         else:
             self._expectation = "expected"

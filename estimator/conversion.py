@@ -15,6 +15,7 @@ inputs:
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 import numba
@@ -157,6 +158,15 @@ def _twin_run(
     return t
 
 
+@dataclass(frozen=True)
+class TwinMark:
+    """A :class:`DesignTwin`'s state at one time: x (n,) or None, t [s], u (1 + N + S,)."""
+
+    x: FloatArray | None
+    t: float
+    u: FloatArray
+
+
 class DesignTwin:
     """The design model run alongside the filter: the dynamic expectation.
 
@@ -185,7 +195,7 @@ class DesignTwin:
         """Advance through rows (times [s], inputs (k, 1 + N + S) SI); conversions (k, N)."""
         model, lay = self.model, self.model.layout
         times = np.ascontiguousarray(times, dtype=np.float64)
-        inputs = np.ascontiguousarray(inputs, dtype=np.float64).reshape(len(times), -1)
+        inputs = np.ascontiguousarray(inputs, dtype=np.float64).reshape(len(times), model.n_inputs)
         keep = times > self.t  # rows already passed are not run again
         times, inputs = times[keep], inputs[keep]
         n_v, n_s = lay.n_vessels, lay.n_species
@@ -207,6 +217,19 @@ class DesignTwin:
         with np.errstate(divide="ignore", invalid="ignore"):
             out[keep] = np.where(feed_a > 0.0, 1.0 - c_a / feed_a, 0.0)
         return out
+
+    def mark(self) -> TwinMark:
+        """Return where the twin is now, to :meth:`resume` from after a revision."""
+        return TwinMark(None if self.x is None else self.x.copy(), self.t, self.u.copy())
+
+    def resume(self, mark: TwinMark | None) -> None:
+        """Go back to a :meth:`mark` (None: to the start, before any row)."""
+        if mark is None:
+            self.x, self.t, self.u = None, -np.inf, self.model.nominal_inputs()
+            return
+        self.x = None if mark.x is None else mark.x.copy()
+        self.t = mark.t
+        self.u = mark.u.copy()
 
     def state_dict(self) -> dict[str, Any]:
         """Return the twin's state as JSON-safe builtins (for checkpoints)."""

@@ -25,9 +25,9 @@ from dataclasses import dataclass, field
 import numpy as np
 from numpy.typing import ArrayLike
 
-from estimator.alerts import AlertEngine, AlertEvent, HealthInput
+from estimator.alerts import AlertEngine, AlertEvent, HealthInput, carried_expectation
 from estimator.config import TrainConfig
-from estimator.conversion import design_conversion, feed_inputs
+from estimator.conversion import DesignTwin, TwinMark, design_conversion, feed_inputs
 from estimator.filter import (
     KIND_MEASUREMENT,
     STATUS_ACCEPTED,
@@ -54,7 +54,10 @@ class EstimateBatch:
         Reactant conversion after each vessel, ``1 - C_A,i / C_A,feed``, and its
         1-sigma [-].
     design_conversion : ndarray, shape (k, N)
-        What the design model expects at the same inputs and design activity [-].
+        What the design model (design activity) expects of each vessel [-]: run
+        through the same input history (``conversion_shortfall.expectation =
+        "dynamic"``, the default) or at steady state at the row's inputs
+        (``"steady"``). The alert rules judge the shortfall against this column.
     activity, activity_std : ndarray, shape (k,)
         Catalyst activity and its 1-sigma [-] (the design value and 0 when the
         activity is not estimated).
@@ -178,8 +181,15 @@ class TrainSession:
         journal: Journal | None = None,
     ) -> None:
         self.config = config
-        self.alert_engine = AlertEngine(config) if alerts else None
         self.model = TrainModel.from_config(config)
+        # The design expectation of each row: the design model run through the
+        # input history ("dynamic"), or its steady state at each row's inputs. The
+        # twin goes back to its mark at the filter's snapshot when a rewind revises
+        # rows, so revised rows get the same expectation as rows run in order.
+        dynamic = config.alerts.conversion_shortfall.expectation == "dynamic"
+        self._twin = DesignTwin(self.model) if dynamic else None
+        self._twin_marks: dict[float, TwinMark] = {}
+        self.alert_engine = AlertEngine(config, expected=carried_expectation) if alerts else None
         # Estimates and instrument activity not yet judged by the alert rules (they
         # run once per alerts.evaluate_every of plant time; see _judge).
         self._held_rows: EstimateBatch | None = None
@@ -215,6 +225,12 @@ class TrainSession:
         arrays = self.filter.state_arrays()
         arrays["format"] = np.array(_CHECKPOINT_FORMAT)
         arrays["config"] = np.array(_fingerprint(self.config))
+        if self._twin is not None:
+            twin = {
+                "now": _mark_dict(self._twin.mark()),
+                "marks": [[t, _mark_dict(m)] for t, m in self._twin_marks.items()],
+            }
+            arrays["twin"] = np.frombuffer(json.dumps(twin).encode(), dtype=np.uint8)
         if self.alert_engine is not None:
             state = self.alert_engine.state_dict()
             held = self._held_rows
@@ -267,11 +283,18 @@ class TrainSession:
         if str(arrays.pop("config", "")) != _fingerprint(config):
             raise ValueError("session checkpoint of another train configuration")
         alerts = arrays.pop("alerts", None)
+        twin = arrays.pop("twin", None)
         session.filter.load_state(arrays)
+        if twin is not None and session._twin is not None:
+            saved_twin = json.loads(np.asarray(twin, dtype=np.uint8).tobytes().decode())
+            session._twin.resume(_mark_of(saved_twin["now"]))
+            session._twin_marks = {float(t): _mark_of(m) for t, m in saved_twin["marks"]}
         if alerts is not None:
             state = json.loads(np.asarray(alerts, dtype=np.uint8).tobytes().decode())
             held = state.pop("held", None)
-            session.alert_engine = AlertEngine.from_state_dict(config, state)
+            session.alert_engine = AlertEngine.from_state_dict(
+                config, state, expected=carried_expectation
+            )
             if held is not None:
                 rows = held["rows"]
                 if rows is not None:
@@ -438,7 +461,7 @@ class TrainSession:
             concentration_std=conc_std,
             conversion=run.conversion,
             conversion_std=run.conversion_std,
-            design_conversion=design_conversion(model, inputs),
+            design_conversion=self._expectation(run.times, inputs),
             activity=activity,
             activity_std=activity_std,
             feed=inputs[:, 1 + n_v :],
@@ -448,6 +471,30 @@ class TrainSession:
         )
         gated, steps, nis = self._events(run)
         return SessionOutput(estimates, gated, steps, run.refused, nis, run.rewound_to)
+
+    def _expectation(self, times: FloatArray, inputs: FloatArray) -> FloatArray:
+        """Return the design expectation of each row [-], shape (k, N) (see ``__init__``)."""
+        twin = self._twin
+        if twin is None:
+            return design_conversion(self.model, inputs)
+        if len(times) and float(times[0]) <= twin.t:
+            # A revision: back to the twin as it was after the row before it (the
+            # filter reran from its snapshot at that row's time).
+            before = [t for t in self._twin_marks if t < float(times[0])]
+            twin.resume(self._twin_marks[max(before)] if before else None)
+        out = np.empty((len(times), self.model.layout.n_vessels))
+        snaps = np.intersect1d(self.filter._snap_t, times)
+        lo = 0
+        for s in snaps.tolist():
+            hi = int(np.searchsorted(times, s, side="right"))
+            out[lo:hi] = twin.run(times[lo:hi], inputs[lo:hi])
+            self._twin_marks[s] = twin.mark()
+            lo = hi
+        out[lo:] = twin.run(times[lo:], inputs[lo:])
+        if len(snaps) or len(self._twin_marks) > len(self.filter._snap_t):
+            kept = set(self.filter._snap_t.tolist())
+            self._twin_marks = {t: m for t, m in self._twin_marks.items() if t in kept}
+        return out
 
     def _events(self, run: FilterRun) -> tuple[list[GatedReading], list[GatedReading], FloatArray]:
         ev = run.events
@@ -506,6 +553,25 @@ class TrainSession:
             [ev["time"][rows], ev["nis"][rows], counts.astype(float), group[first].astype(float)]
         )
         return gated, steps, nis_rows[np.argsort(nis_rows[:, 0], kind="stable")]
+
+
+def _mark_dict(mark: TwinMark) -> dict[str, object]:
+    """Return a twin mark as JSON-safe builtins."""
+    return {
+        "x": None if mark.x is None else mark.x.tolist(),
+        "t": mark.t if math.isfinite(mark.t) else None,
+        "u": mark.u.tolist(),
+    }
+
+
+def _mark_of(data: dict[str, object]) -> TwinMark:
+    """Rebuild a twin mark from :func:`_mark_dict` output."""
+    x, t = data["x"], data["t"]
+    return TwinMark(
+        None if x is None else np.array(x, dtype=np.float64),
+        -math.inf if t is None else float(t),  # type: ignore[arg-type]
+        np.array(data["u"], dtype=np.float64),
+    )
 
 
 def _fingerprint(config: TrainConfig) -> str:

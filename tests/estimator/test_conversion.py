@@ -151,3 +151,37 @@ def test_design_twin_follows_steps_like_an_independent_radau_integration():
     steady = design_conversion(model, inputs)
     after_step = (times > 2 * hour) & (times < 2.5 * hour)
     assert np.max(np.abs(got[after_step] - steady[after_step])) > 0.01
+
+
+def test_session_rows_carry_the_twins_expectation_through_rewinds_and_restarts():
+    # The session fills each row's design_conversion with the dynamic expectation
+    # (the train's default). Late lab results rewind the filter (some past its
+    # in-memory window, read back from the journal) and a restart resumes from a
+    # checkpoint half way; the last word on every row must still be exactly what a
+    # fresh twin gives when run once over those final rows in order (the twin itself
+    # is checked against Radau above).
+    from estimator.config import load_train_config
+    from estimator.conversion import DesignTwin
+    from estimator.model import TrainModel
+    from estimator.session import EstimateBatch, TrainSession
+    from tests.estimator.test_event_memory import DEMO, MEMORY, ListJournal, plant_batches, run
+
+    config = load_train_config(DEMO)
+    assert config.alerts.conversion_shortfall.expectation == "dynamic"
+    batches = plant_batches(hours=5.0)
+    half = len(batches) // 2
+    journal = ListJournal()
+    first = TrainSession(config, memory=MEMORY, journal=journal)
+    outs = run(first, batches[:half], journal)
+    resumed = TrainSession.restore(config, first.checkpoint(), memory=MEMORY, journal=journal)
+    outs += run(resumed, batches[half:], journal)
+    assert sum(o.revised_from is not None for o in outs) >= 3
+    rows = EstimateBatch.concat([o.estimates for o in outs])
+    _, last = np.unique(rows.time[::-1], return_index=True)
+    rows = rows.take(np.sort(len(rows) - 1 - last))
+    expected = DesignTwin(TrainModel.from_config(config)).run(rows.time, rows.inputs)
+    np.testing.assert_array_equal(rows.design_conversion, expected)
+    # And it is the dynamic expectation, not the steady one: after the feed step at
+    # 3 h the two part for a while.
+    steady = design_conversion(TrainModel.from_config(config), rows.inputs)
+    assert np.max(np.abs(steady - expected)) > 0.005
