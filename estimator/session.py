@@ -483,7 +483,9 @@ class TrainSession:
             before = [t for t in self._twin_marks if t < float(times[0])]
             twin.resume(self._twin_marks[max(before)] if before else None)
         out = np.empty((len(times), self.model.layout.n_vessels))
-        snaps = np.intersect1d(self.filter._snap_t, times)
+        snap_t = self.filter._snap_t
+        fresh = len(times) and len(snap_t) and snap_t[-1] >= times[0]
+        snaps = np.intersect1d(snap_t, times) if fresh else snap_t[:0]
         lo = 0
         for s in snaps.tolist():
             hi = int(np.searchsorted(times, s, side="right"))
