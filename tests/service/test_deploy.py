@@ -9,7 +9,11 @@ from __future__ import annotations
 
 import configparser
 import re
+import shutil
+import subprocess
+import sys
 import tomllib
+import zipfile
 from pathlib import Path
 
 import pytest
@@ -81,3 +85,41 @@ def test_the_commands_the_deploy_files_use_exist():
     group = typer.main.get_group(cli)
     assert {"serve", "keys", "db"} <= set(group.commands)
     assert {"upgrade", "current"} <= set(group.commands["db"].commands)  # type: ignore[attr-defined]
+
+
+def test_the_images_sources_build_a_wheel_with_every_file_the_service_reads(tmp_path: Path):
+    # The image's build stage copies only some of the repository (its COPY lines)
+    # and installs a wheel, not the source tree: the dashboard's static files and
+    # the database migrations must be inside that wheel, or the container serves no
+    # dashboard and cannot upgrade its database.
+    text = (DEPLOY / "Dockerfile").read_text()
+    copied = [
+        name
+        for source in re.findall(r"^COPY (?!--)(.+) \S+$", text, flags=re.MULTILINE)
+        for name in source.split()
+    ]
+    src = tmp_path / "src"
+    src.mkdir()
+    for name in copied:
+        if Path(name).is_dir():
+            shutil.copytree(name, src / name, ignore=shutil.ignore_patterns("__pycache__"))
+        else:
+            shutil.copy(name, src / name)
+    build = subprocess.run(
+        [sys.executable, "-m", "pip", "wheel", "--no-deps", "--no-build-isolation",
+         "--wheel-dir", str(tmp_path / "wheels"), str(src)],
+        capture_output=True, text=True, check=False,
+    )  # fmt: skip
+    assert build.returncode == 0, build.stderr[-2000:]
+    (wheel,) = (tmp_path / "wheels").glob("stagewatch-*.whl")
+    names = set(zipfile.ZipFile(wheel).namelist())
+    needed = [
+        p.as_posix()
+        for package in ("estimator", "service")
+        for p in Path(package).rglob("*")
+        if p.is_file() and "__pycache__" not in p.parts
+    ]
+    assert any(n.startswith("service/web/") for n in needed)
+    assert any(n.startswith("service/migrations/versions/") for n in needed)
+    missing = sorted(n for n in needed if n not in names)
+    assert missing == []
