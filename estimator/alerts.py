@@ -48,12 +48,11 @@ Sources of the checks (tags as in the project's REFERENCES.md):
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from numpy.typing import ArrayLike
 from scipy.stats import chi2
 
 from estimator.alarm_state import (
@@ -68,12 +67,23 @@ from estimator.alarm_state import (
     Priority,
     format_time,
 )
+from estimator.alert_windows import (
+    BINS_PER_WINDOW,
+    ROWS_PER_WINDOW,
+    fold_counts,
+    fold_nis,
+    grid_first,
+    merge_nis,
+    merge_series,
+    rolling_slope,
+)
 from estimator.config import TemperatureTag, TrainConfig
 from estimator.conversion import DesignTwin
+from estimator.health import HealthInput, empty_rows
 from estimator.model import FloatArray, TrainModel
 
 if TYPE_CHECKING:
-    from estimator.session import EstimateBatch, SessionOutput, TrainSession
+    from estimator.session import EstimateBatch
 
 __all__ = [
     "DISCLAIMER",
@@ -128,136 +138,6 @@ def design_expectation(estimates: EstimateBatch) -> FloatArray:
     return estimates.design_conversion
 
 
-def _empty(columns: int = 0) -> FloatArray:
-    return np.empty((0, columns)) if columns else np.empty(0)
-
-
-@dataclass(frozen=True)
-class HealthInput:
-    """What the instruments did during one update, for the health rules.
-
-    Attributes
-    ----------
-    reading_tags : tuple of str, shape (m,)
-        Tag of each reading the session took (refused readings left out).
-    reading_times : ndarray, shape (m,)
-        Time stamp of each reading [s since the epoch].
-    reading_values : ndarray, shape (m,)
-        Each reading's value in SI [m^3/s, K, mol/m^3].
-    gated_tags : tuple of str, shape (g,)
-        Tag of each reading the filter gated (rejected) in the update.
-    gated_times : ndarray, shape (g,)
-        Their time stamps [s since the epoch].
-    nis : ndarray, shape (r, 4)
-        (sample time [s], NIS [-], degrees of freedom [-], measurement group) of
-        each accepted update, as :attr:`SessionOutput.nis`.
-
-    Notes
-    -----
-    Pass one with every :meth:`AlertEngine.update` (:meth:`empty` when nothing
-    was read): the engine keeps its own windows of what it was given and judges
-    staleness by the last reading it knows of. Readings and NIS rows seen again
-    after a rewind are counted once.
-    """
-
-    reading_tags: tuple[str, ...] = ()
-    reading_times: FloatArray = field(default_factory=_empty)
-    reading_values: FloatArray = field(default_factory=_empty)
-    gated_tags: tuple[str, ...] = ()
-    gated_times: FloatArray = field(default_factory=_empty)
-    nis: FloatArray = field(default_factory=lambda: _empty(4))
-
-    @classmethod
-    def empty(cls) -> HealthInput:
-        """Return a health input of an update in which nothing was read."""
-        return cls()
-
-    @classmethod
-    def concat(cls, parts: Sequence[HealthInput]) -> HealthInput:
-        """Join the health inputs of successive updates, in order."""
-        if len(parts) == 1:
-            return parts[0]
-        return cls(
-            reading_tags=tuple(t for p in parts for t in p.reading_tags),
-            reading_times=np.concatenate([_empty(), *(p.reading_times for p in parts)]),
-            reading_values=np.concatenate([_empty(), *(p.reading_values for p in parts)]),
-            gated_tags=tuple(t for p in parts for t in p.gated_tags),
-            gated_times=np.concatenate([_empty(), *(p.gated_times for p in parts)]),
-            nis=np.concatenate([_empty(4), *(p.nis.reshape(-1, 4) for p in parts)]),
-        )
-
-    def to_dict(self) -> dict[str, Any]:
-        """Return the input as JSON-safe builtins (for a session checkpoint)."""
-        return {
-            "reading_tags": list(self.reading_tags),
-            "reading_times": self.reading_times.tolist(),
-            "reading_values": self.reading_values.tolist(),
-            "gated_tags": list(self.gated_tags),
-            "gated_times": self.gated_times.tolist(),
-            "nis": self.nis.tolist(),
-        }
-
-    @classmethod
-    def from_dict(cls, data: dict[str, Any]) -> HealthInput:
-        """Rebuild from :meth:`to_dict` output."""
-        return cls(
-            reading_tags=tuple(data["reading_tags"]),
-            reading_times=np.array(data["reading_times"], dtype=np.float64),
-            reading_values=np.array(data["reading_values"], dtype=np.float64),
-            gated_tags=tuple(data["gated_tags"]),
-            gated_times=np.array(data["gated_times"], dtype=np.float64),
-            nis=np.array(data["nis"], dtype=np.float64).reshape(-1, 4),
-        )
-
-    @classmethod
-    def from_session(
-        cls,
-        session: TrainSession,
-        tags: Sequence[str],
-        times: ArrayLike,
-        values: ArrayLike,
-        output: SessionOutput,
-        *,
-        si: bool = False,
-    ) -> HealthInput:
-        """Build the health input of one :meth:`TrainSession.ingest` call.
-
-        Parameters
-        ----------
-        session : TrainSession
-            The session that ingested the readings (for units).
-        tags, times, values
-            The readings as passed to :meth:`TrainSession.ingest` [tag, s, tag unit].
-        output : SessionOutput
-            What the call returned.
-        si : bool
-            Values are already SI (as for ``ingest(..., si=True)``).
-
-        Returns
-        -------
-        HealthInput
-        """
-        tag_list = list(tags)
-        t = np.asarray(times, dtype=np.float64)
-        v = np.asarray(values, dtype=np.float64)
-        if not si:
-            v = session.to_si(session.codes(tag_list), v)
-        refused = {(r.tag, float(r.time)) for r in output.refused}
-        keep = [
-            i
-            for i, tag in enumerate(tag_list)
-            if (tag, float(t[i])) not in refused and math.isfinite(float(v[i]))
-        ]
-        return cls(
-            reading_tags=tuple(tag_list[i] for i in keep),
-            reading_times=t[keep],
-            reading_values=v[keep],
-            gated_tags=tuple(g.tag for g in output.gated),
-            gated_times=np.array([g.time for g in output.gated], dtype=np.float64),
-            nis=np.asarray(output.nis, dtype=np.float64).reshape(-1, 4),
-        )
-
-
 @dataclass
 class _Eval:
     """One alert's tests over the new rows, and how to word a change."""
@@ -297,110 +177,10 @@ class _TagHistory:
     (``binned``: rows of (bin end time [s], readings)), enough for the spike rule.
     """
 
-    times: FloatArray = field(default_factory=_empty)
-    values: FloatArray = field(default_factory=_empty)
-    gated: FloatArray = field(default_factory=_empty)
+    times: FloatArray = field(default_factory=empty_rows)
+    values: FloatArray = field(default_factory=empty_rows)
+    gated: FloatArray = field(default_factory=empty_rows)
     binned: FloatArray = field(default_factory=lambda: np.empty((0, 2)))
-
-
-#: Resolution of the windows the rules keep, as a fraction of each window: the
-#: activity and expectation series keep one row per window/720 (10 s of a 2 h
-#: window); NIS rows and reading counts older than the fold age are summed per
-#: window/240 (30 s of a 2 h window).
-_ROWS_PER_WINDOW = 720
-_BINS_PER_WINDOW = 240
-#: Offset of a folded NIS row's group, so its (time, group) key never meets a raw one.
-_FOLDED = 1_000_000.0
-
-
-def _grid_first(times: FloatArray, previous: float, step: float) -> np.ndarray:
-    """Mask of the rows that open a new grid interval of ``step`` [s].
-
-    ``previous`` is the time of the last row already kept (or -inf). Batching
-    does not change the answer: a row is kept when its interval differs from the
-    row before it, wherever the batch boundary falls.
-    """
-    if step <= 0.0:
-        return np.ones(len(times), dtype=bool)
-    bins = np.floor(np.asarray(times, dtype=np.float64) / step)
-    before = np.floor(previous / step) if math.isfinite(previous) else -np.inf
-    return bins != np.concatenate([[before], bins[:-1]])
-
-
-def _bin_sums(keys: FloatArray, values: FloatArray) -> tuple[FloatArray, FloatArray]:
-    """Return the sorted unique ``keys`` (k,) and the column sums of ``values`` per key."""
-    uniq, inverse = np.unique(keys, return_inverse=True)
-    sums = np.column_stack(
-        [
-            np.bincount(inverse, weights=values[:, c], minlength=len(uniq))
-            for c in range(values.shape[1])
-        ]
-    )
-    return np.asarray(uniq, dtype=np.float64), sums.astype(np.float64)
-
-
-def _fold_nis(rows: FloatArray, until: float, step: float) -> FloatArray:
-    """Sum the raw NIS rows older than ``until`` per bin of ``step`` [s] and group.
-
-    A folded row is (bin end time, group + _FOLDED, NIS sum, dof sum); the result
-    stays sorted by (time, group).
-    """
-    old = (rows[:, 0] < until) & (rows[:, 1] < _FOLDED)
-    if not old.any():
-        return rows
-    part = rows[old]
-    end = (np.floor(part[:, 0] / step) + 1.0) * step
-    folded = np.column_stack([end, part[:, 1] + _FOLDED, part[:, 2:]])
-    rest = rows[~old]
-    both = np.concatenate([rest[rest[:, 1] >= _FOLDED], folded])
-    pieces = [rest[rest[:, 1] < _FOLDED]]
-    for group in np.unique(both[:, 1]).tolist():  # a few measurement groups
-        mine = both[both[:, 1] == group]
-        ends, sums = _bin_sums(mine[:, 0], mine[:, 2:])
-        pieces.append(np.column_stack([ends, np.full(len(ends), group), sums]))
-    merged = np.concatenate(pieces)
-    return merged[np.lexsort((merged[:, 1], merged[:, 0]))]
-
-
-def _fold_counts(binned: FloatArray, times: FloatArray, step: float) -> FloatArray:
-    """Add reading ``times`` to per-bin counts (rows of bin end time [s], count)."""
-    end = (np.floor(times / step) + 1.0) * step
-    rows = np.concatenate([binned, np.column_stack([end, np.ones(len(end))])])
-    keys, sums = _bin_sums(rows[:, 0], rows[:, 1:])
-    return np.column_stack([keys, sums])
-
-
-def _merge_nis(held: FloatArray, new: FloatArray) -> FloatArray:
-    """Rows (time, group, NIS, dof) of both, sorted by (time, group); new rows win a tie.
-
-    Only the held rows from the new rows' earliest time on are sorted again (a
-    rewind reruns the recent past; new rows usually all come after the held ones).
-    """
-    if len(new) == 0:
-        return held
-    cut = int(np.searchsorted(held[:, 0], new[:, 0].min(), side="left"))
-    return np.concatenate([held[:cut], _sorted_nis(np.concatenate([held[cut:], new]))])
-
-
-def _sorted_nis(rows: FloatArray) -> FloatArray:
-    """Sort NIS rows by (time, group), the last of equal keys kept."""
-    order = np.lexsort((np.arange(len(rows)), rows[:, 1], rows[:, 0]))
-    rows = rows[order]
-    last = np.ones(len(rows), dtype=bool)
-    last[:-1] = (rows[1:, 0] != rows[:-1, 0]) | (rows[1:, 1] != rows[:-1, 1])
-    return rows[last]
-
-
-def _merge(
-    times: FloatArray, values: FloatArray, new_t: FloatArray, new_v: FloatArray
-) -> tuple[FloatArray, FloatArray]:
-    """Union of two time series, sorted; a time given twice keeps the newer value."""
-    t = np.concatenate([times, new_t])
-    v = np.concatenate([values, new_v])
-    order = np.argsort(t, kind="stable")
-    t, v = t[order], v[order]
-    last = np.append(t[1:] != t[:-1], True)
-    return t[last], v[last]
 
 
 def _duration(seconds: float) -> str:
@@ -422,47 +202,6 @@ def _delay_why(delay: float, activating: bool) -> str:
     if delay <= 0.0:
         return "back inside the limit less its deadband (no off-delay)"
     return f"back inside the limit less its deadband for the off-delay of {_duration(delay)}"
-
-
-def _rolling_slope(
-    t: FloatArray, y: FloatArray, std: FloatArray, window: float, start: int
-) -> tuple[FloatArray, FloatArray, np.ndarray]:
-    """Least-squares slope over the trailing window at each row from ``start`` on.
-
-    Returns slope [1/s], its standard error [1/s] and whether the window held
-    enough data (three rows, three quarters of the window spanned).
-
-    Notes
-    -----
-    Consecutive filter estimates are not independent samples, so the residual-based
-    standard error of ordinary least squares understates the uncertainty of the
-    slope; the error used is the larger of it and ``sqrt(s_0^2 + s_1^2) / span``
-    from the filter's own 1-sigma at the window's ends.
-    """
-    x = (t - t[0]) / window
-    yc = y - y[0]
-
-    def prefix(z: FloatArray) -> FloatArray:
-        return np.concatenate([[0.0], np.cumsum(z)])
-
-    s_x, s_y = prefix(x), prefix(yc)
-    s_xx, s_xy, s_yy = prefix(x * x), prefix(x * yc), prefix(yc * yc)
-    rows = np.arange(start, len(t))
-    first = np.searchsorted(t, t[rows] - window, side="left")
-    n = (rows + 1 - first).astype(np.float64)
-    hi, lo = rows + 1, first
-    sx, sy = s_x[hi] - s_x[lo], s_y[hi] - s_y[lo]
-    suu = s_xx[hi] - s_xx[lo] - sx * sx / n
-    suv = s_xy[hi] - s_xy[lo] - sx * sy / n
-    svv = s_yy[hi] - s_yy[lo] - sy * sy / n
-    span = t[rows] - t[first]
-    ok = (n >= 3) & (span >= 0.75 * window) & (suu > 0.0)
-    safe_suu = np.where(ok, suu, 1.0)
-    b = np.where(ok, suv / safe_suu, 0.0)
-    rss = np.maximum(svv - b * suv, 0.0)
-    se_ols = np.sqrt(rss / np.maximum(n - 2.0, 1.0) / safe_suu) / window
-    se_ends = np.hypot(std[first], std[rows]) / np.where(span > 0.0, span, 1.0)
-    return b / window, np.maximum(se_ols, se_ends), ok
 
 
 class AlertEngine:
@@ -761,8 +500,8 @@ class AlertEngine:
         if ctx.activity_kept is None:
             held = self._activity
             prev = float(held[-1, 0]) if len(held) else -math.inf
-            step = self.config.alerts.activity_falling.window / _ROWS_PER_WINDOW
-            ctx.activity_kept = _grid_first(ctx.time, prev, step)
+            step = self.config.alerts.activity_falling.window / ROWS_PER_WINDOW
+            ctx.activity_kept = grid_first(ctx.time, prev, step)
         return ctx.activity_kept
 
     def _remember(self, ctx: _Rows) -> None:
@@ -772,13 +511,13 @@ class AlertEngine:
         self.last_time = now
         a = self.config.alerts
         # One row per interval of the activity and expectation series (see
-        # _ROWS_PER_WINDOW); the rules evaluate the same thinned series.
+        # ROWS_PER_WINDOW); the rules evaluate the same thinned series.
         keep = self._activity_kept(ctx)
         act = np.column_stack([ctx.time, rows.activity, rows.activity_std])[keep]
         self._activity = np.concatenate([self._activity, act])
         self._activity = self._activity[self._activity[:, 0] >= now - a.activity_falling.window]
         prev = float(self._expected[-1, 0]) if len(self._expected) else -math.inf
-        keep = _grid_first(ctx.time, prev, self._settle / _ROWS_PER_WINDOW)
+        keep = grid_first(ctx.time, prev, self._settle / ROWS_PER_WINDOW)
         exp = np.column_stack([ctx.time, ctx.expected])[keep]
         self._expected = np.concatenate([self._expected, exp])
         self._expected = self._expected[self._expected[:, 0] >= now - self._settle]
@@ -789,7 +528,7 @@ class AlertEngine:
         fold_until = now - self._fold_age
         if fold_until < self._folded_until + 0.25 * self._fold_age:
             fold_until = -math.inf
-        spike_bin = a.tag_spikes.window / _BINS_PER_WINDOW
+        spike_bin = a.tag_spikes.window / BINS_PER_WINDOW
         for hist in self._history.values():
             cut = max(
                 0,
@@ -805,11 +544,11 @@ class AlertEngine:
                 len(hist.times) - (a.tag_frozen.samples + 1),
             )
             if fold > 0:
-                hist.binned = _fold_counts(hist.binned, hist.times[:fold], spike_bin)
+                hist.binned = fold_counts(hist.binned, hist.times[:fold], spike_bin)
                 hist.times, hist.values = hist.times[fold:], hist.values[fold:]
             hist.binned = hist.binned[hist.binned[:, 0] > keep_from]
         window = a.model_mismatch.window
-        self._nis = _fold_nis(self._nis, fold_until, window / _BINS_PER_WINDOW)
+        self._nis = fold_nis(self._nis, fold_until, window / BINS_PER_WINDOW)
         self._folded_until = max(self._folded_until, fold_until)
         self._nis = self._nis[self._nis[:, 0] >= now - window]
 
@@ -821,7 +560,9 @@ class AlertEngine:
         for tag, hist in self._history.items():
             sel = (tags == tag) & np.isfinite(times) & np.isfinite(values)
             if sel.any():
-                hist.times, hist.values = _merge(hist.times, hist.values, times[sel], values[sel])
+                hist.times, hist.values = merge_series(
+                    hist.times, hist.values, times[sel], values[sel]
+                )
         gated_tags = np.asarray(health.gated_tags, dtype=object)
         gated_times = np.asarray(health.gated_times, dtype=np.float64)
         for tag, hist in self._history.items():
@@ -832,7 +573,7 @@ class AlertEngine:
         ok = np.isfinite(rows[:, 0]) & np.isfinite(rows[:, 1]) & (rows[:, 2] > 0)
         ok &= rows[:, 0] >= self._folded_until
         if ok.any():
-            self._nis = _merge_nis(self._nis, rows[ok][:, [0, 3, 1, 2]])
+            self._nis = merge_nis(self._nis, rows[ok][:, [0, 3, 1, 2]])
 
     def _evaluations(self, ctx: _Rows) -> Iterator[_Eval]:
         """Every registered alert's tests; health and inputs first (causes use them)."""
@@ -1022,7 +763,7 @@ class AlertEngine:
             y = np.concatenate([held[:, 1], act[keep]])
             s = np.concatenate([held[:, 2], std[keep]])
             start = max(len(held) - 1, 0)
-            slope, se, ok = _rolling_slope(t, y, s, fall.window, start)
+            slope, se, ok = rolling_slope(t, y, s, fall.window, start)
             at = np.cumsum(keep) - (0 if len(held) else 1)
             slope, se, ok = slope[at], se[at], ok[at]
             rate = -slope
@@ -1456,7 +1197,7 @@ class AlertEngine:
                     )
             folded = data["folded_until"]
             engine._folded_until = -math.inf if folded is None else float(folded)
-            engine._nis = _merge_nis(
+            engine._nis = merge_nis(
                 np.empty((0, 4)), np.array(data["nis"], dtype=np.float64).reshape(-1, 4)
             )
         except (KeyError, TypeError) as exc:
