@@ -21,6 +21,8 @@ No FastAPI here: the routes in :mod:`service.app` call these methods.
 from __future__ import annotations
 
 import asyncio
+import functools
+import hashlib
 import logging
 import math
 import threading
@@ -67,6 +69,11 @@ LiveItem = tuple[Literal["estimate", "alert"], dict[str, Any]]
 
 _PRIORITY_ORDER = {"high": 0, "warning": 1, "advisory": 2}
 
+#: Least wall-clock time between two writes of a train's settled estimate rows [s].
+SETTLE_EVERY_WALL = 5.0
+#: Held estimate rows beyond which they are written whatever the wall-clock time.
+SETTLE_MAX_HELD = 20_000
+
 #: Readings whose quality code is below this are refused: OPC UA quality bytes put
 #: bad at 0-63, uncertain at 64-191 (applied, like good) and good at 192-255.
 BAD_QUALITY = 64
@@ -85,7 +92,12 @@ class Runtime:
     journal_seq: int = 0
     checkpoint_time: float = -math.inf
     checkpoint_wall: float = -math.inf  # time.monotonic() of the last checkpoint [s]
-    latest: dict[str, Any] | None = None
+    settle_wall: float = -math.inf  # time.monotonic() of the last write of settled rows [s]
+    # The newest estimate: a row of the batch that brought it, held as (batch, row
+    # index) and turned into its stored form only when read (see ``latest``); or,
+    # after a restart, the newest stored row.
+    latest_ref: tuple[EstimateBatch, int] | None = None
+    latest_row: dict[str, Any] | None = None
     # Estimate rows not yet written: a reading with dead time revises the last few
     # minutes, so rows are stored once they are older than that (see Hub._settle).
     # Held as (batch, row index): a row is turned into its stored form only if it
@@ -98,6 +110,22 @@ class Runtime:
     # Gated readings and alert events not yet written (a failed write leaves them).
     pending_gated: list[dict[str, Any]] = field(default_factory=list)
     pending_alerts: list[AlertEvent] = field(default_factory=list)
+
+    @property
+    def latest(self) -> dict[str, Any] | None:
+        """The newest estimate in its stored form (see :func:`estimate_rows`), or None."""
+        ref = self.latest_ref
+        if ref is None:
+            return self.latest_row
+        return estimate_rows(self.config, ref[0], [ref[1]])[0]
+
+    @property
+    def latest_time(self) -> float | None:
+        """Time of the newest estimate [s since the epoch], or None."""
+        ref = self.latest_ref
+        if ref is not None:
+            return float(ref[0].time[ref[1]])
+        return None if self.latest_row is None else float(self.latest_row["t"])
 
 
 class JournalReader:
@@ -228,12 +256,15 @@ class Hub:
         """Load every live train: restore its checkpoint, replay the journal after it.
 
         First the filter's compiled kernels are loaded (:func:`warm_up`), so that
-        readiness means no request will wait for them.
+        readiness means no request will wait for them. Then the store's log
+        checkpoints move to a thread of their own (:meth:`Store.start_wal_checkpoints`),
+        off the thread that serves the requests; :meth:`stop` ends them.
         """
         took = warm_up()
         log.info("filter kernels loaded in %.1f s", took)
         for record in self.store.list_trains():
             self._load(record)
+        self.store.start_wal_checkpoints()
         if self.webhooks is not None:
             self.webhooks.start()
         self.ready = True
@@ -252,6 +283,7 @@ class Hub:
                     except StoreUnavailable as exc:
                         log.error("train %s: no checkpoint at shutdown: %s", runtime.name, exc)
         finally:
+            self.store.stop_wal_checkpoints()
             if self.webhooks is not None:
                 self.webhooks.stop()
 
@@ -299,7 +331,7 @@ class Hub:
         # A replay that logged fewer events than the crashed run must not reuse numbers.
         _continue_sequence(session, self.store.last_alert_sequence(record.id))
         self._settle(runtime)  # what the journal replay re-derived
-        runtime.latest = self.store.latest_estimate(record.id)
+        runtime.latest_ref, runtime.latest_row = None, self.store.latest_estimate(record.id)
         runtime.checkpoint_time = session.filter.t
         _refresh_alerts(runtime)
         self.trains[record.name] = runtime
@@ -362,15 +394,40 @@ class Hub:
         self,
         name: str,
         tags: Sequence[str],
-        times: Sequence[float],
-        values: Sequence[float],
-        qualities: Sequence[int | None],
+        times: Sequence[float] | np.ndarray,
+        values: Sequence[float] | np.ndarray,
+        qualities: Sequence[int | None] | None,
         now: float,
     ) -> IngestResult:
-        """Screen, journal, apply and store a batch of readings for one train."""
+        """Screen, journal, apply and store a batch of readings for one train.
+
+        Parameters
+        ----------
+        name : str
+            The train.
+        tags : sequence of str, length k
+            Tag of each reading.
+        times : sequence or ndarray of float, length k
+            Reading time of each [s since the epoch].
+        values : sequence or ndarray of float, length k
+            Value of each, in its tag's declared unit.
+        qualities : sequence of int or None, length k; or None
+            Source quality code of each reading, or None; None for the whole
+            column when no reading carries one.
+        now : float
+            When the batch arrived [s since the epoch] (wall clock).
+
+        Returns
+        -------
+        IngestResult
+            Readings accepted (journaled and applied), duplicates, and each refused
+            reading with its reason.
+        """
         runtime = self.get(name)
         t = np.asarray(times, dtype=np.float64)
         v = np.asarray(values, dtype=np.float64)
+        if qualities is not None and all(q is None for q in qualities):
+            qualities = None
         with runtime.lock:
             session = runtime.session
             codes = session.codes(tags)
@@ -387,27 +444,38 @@ class Hub:
                 refuse(i, r.reason)
                 for i, r in zip(np.flatnonzero(~take).tolist(), refusals, strict=True)
             ]
-            # OPC UA quality: below 64 the source itself calls the value bad.
-            bad = take & np.array([q is not None and q < BAD_QUALITY for q in qualities])
             tolerance = self.settings.future_tolerance
-            future = take & ~bad & (t > now + tolerance)
-            for i in np.flatnonzero(bad | future).tolist():
-                reason = (
-                    f"quality code {qualities[i]} is bad (below {BAD_QUALITY}): not applied"
-                    if bad[i]
-                    else f"time in the future beyond the tolerance ({tolerance:g} s)"
-                )
+            future = take & (t > now + tolerance)
+            if qualities is not None:
+                # OPC UA quality: below 64 the source itself calls the value bad.
+                quality = np.array([BAD_QUALITY if q is None else q for q in qualities])
+                bad = take & (quality < BAD_QUALITY)
+                future &= ~bad
+                take &= ~bad
+                for i in np.flatnonzero(bad).tolist():
+                    code = qualities[i]
+                    reason = f"quality code {code} is bad (below {BAD_QUALITY}): not applied"
+                    refused.append(refuse(i, reason))
+            for i in np.flatnonzero(future).tolist():
+                reason = f"time in the future beyond the tolerance ({tolerance:g} s)"
                 refused.append(refuse(i, reason))
-            take &= ~bad
             keep = np.flatnonzero(take & ~future)
-            rows = [(tags[i], float(t[i]), float(v[i]), qualities[i]) for i in keep.tolist()]
-            result = self.store.append_readings(runtime.train_id, rows, received_at=now)
+            if len(keep) == len(t):
+                kept_tags: Sequence[str] = tags
+                kept_qualities = qualities
+            else:
+                kept = keep.tolist()
+                kept_tags = [tags[i] for i in kept]
+                kept_qualities = None if qualities is None else [qualities[i] for i in kept]
+            result = self.store.append_columns(
+                runtime.train_id, kept_tags, t[keep], v[keep], kept_qualities, received_at=now
+            )
             for j in result.conflicts:
                 reason = "a different value is already journaled for this tag and time"
                 refused.append(refuse(int(keep[j]), reason))
             new = np.asarray(result.new_positions, dtype=np.int64)
             if new.size:
-                sel = keep[new]
+                sel = keep if new.size == keep.size else keep[new]
                 out = session.ingest_codes(codes[sel], t[sel], v[sel])
                 # Journaled and applied: the batch is accepted, whatever follows.
                 runtime.journal_seq = max(runtime.journal_seq, max(result.new_ids))
@@ -422,10 +490,12 @@ class Hub:
                     self.metrics.deferred_writes.inc()
                     log.warning("train %s: writes deferred: %s", runtime.name, exc)
             self.metrics.accepted.inc(int(new.size))
-            self.metrics.duplicates.inc(len(result.duplicates))
+            if result.duplicates:
+                self.metrics.duplicates.inc(len(result.duplicates))
             for r in refused:
                 self.metrics.refused.labels(_reason_key(r.reason)).inc()
-        refused.sort(key=lambda r: r.index)
+        if len(refused) > 1:
+            refused.sort(key=lambda r: r.index)
         return IngestResult(
             accepted=int(new.size), duplicates=len(result.duplicates), refused=refused
         )
@@ -433,10 +503,10 @@ class Hub:
     def _store_output(self, runtime: Runtime, out: SessionOutput, *, live: bool = True) -> None:
         """Store what an ingest produced; tell subscribers and webhooks when ``live``."""
         batch = out.estimates
-        finite = _finite_rows(batch)
-        if not finite.all():
+        if not _all_finite(batch):
             # Never expected (the filter bounds its state); kept out of the store,
             # whose rows must be JSON numbers, rather than failing the request.
+            finite = _finite_rows(batch)
             log.warning(
                 "train %s: %d estimate rows with non-finite numbers not stored",
                 runtime.name,
@@ -447,8 +517,9 @@ class Hub:
         if n:
             for k, t in enumerate(batch.time.tolist()):
                 runtime.unsettled[t] = (batch, k)
-            if runtime.latest is None or float(batch.time[-1]) >= runtime.latest["t"]:
-                runtime.latest = estimate_rows(runtime.config, batch, [n - 1])[0]
+            newest = runtime.latest_time
+            if newest is None or float(batch.time[-1]) >= newest:
+                runtime.latest_ref = (batch, n - 1)
             if live and runtime.subscribers:
                 self._publish(runtime, "estimate", estimate_rows(runtime.config, batch))
         runtime.pending_gated += gated_rows(out.gated, "gated") + gated_rows(out.steps, "step")
@@ -464,7 +535,14 @@ class Hub:
         """Write held gated readings and alert events, then settled estimate rows.
 
         Each is dropped from the runtime only once written, so a write that fails
-        (StoreUnavailable) is tried again with the next one.
+        (StoreUnavailable) is tried again with the next one. Settled estimate rows
+        are written at most once per :data:`SETTLE_EVERY_WALL` of wall-clock time
+        (or once :data:`SETTLE_MAX_HELD` rows are held): a transaction per request
+        cost more than the few rows each one stores. Nothing needs them sooner:
+        the latest estimate and the live stream come from memory, a read of the
+        history settles the train first, a checkpoint writes every held row before
+        it is saved, and a restart re-derives the rows after the checkpoint from
+        the journal.
         """
         if runtime.pending_gated:
             self.store.upsert_gated(runtime.train_id, runtime.pending_gated)
@@ -472,7 +550,12 @@ class Hub:
         if runtime.pending_alerts:
             self.store.append_alert_events(runtime.train_id, runtime.pending_alerts)
             runtime.pending_alerts = []
-        self._settle(runtime, runtime.session.filter.t - _settle_lag(runtime))
+        wall = time.monotonic()
+        if wall >= runtime.settle_wall + SETTLE_EVERY_WALL or (
+            len(runtime.unsettled) > SETTLE_MAX_HELD
+        ):
+            self._settle(runtime, runtime.session.filter.t - _settle_lag(runtime))
+            runtime.settle_wall = wall
 
     def _settle(self, runtime: Runtime, before: float = math.inf) -> None:
         """Write the held estimate rows older than ``before`` (all by default).
@@ -515,13 +598,26 @@ class Hub:
     def _checkpoint_due(self, runtime: Runtime) -> bool:
         """Whether a train's session should be saved now.
 
-        Once ``checkpoint_every`` of plant time has passed, and at most once per
+        Once per ``checkpoint_every`` of plant time (each train's intervals shifted
+        by a phase of their own), and at most once per
         ``checkpoint_min_wall`` of wall-clock time: a historian back-filling days
         of readings moves plant time hundreds of times faster than the clock, and
         saving every few requests would cost more than replaying the journal.
         """
         settings = self.settings
-        if runtime.session.filter.t < runtime.checkpoint_time + settings.checkpoint_every:
+        every = settings.checkpoint_every
+        now, last = runtime.session.filter.t, runtime.checkpoint_time
+        if math.isfinite(now) and math.isfinite(last):
+            # Plant time is cut into intervals of checkpoint_every shifted by a
+            # fraction of their length drawn from the train's name, and a checkpoint
+            # is due in the first update of a new interval: trains fed the same
+            # plant times (a bridge back-filling a plant's lines together) would
+            # otherwise all save in the same request cycle, and their requests
+            # would queue behind hundreds of checkpoints.
+            shift = _phase(runtime.name) * every
+            if math.floor((now - shift) / every) <= math.floor((last - shift) / every):
+                return False
+        elif now < last + every:
             return False
         return time.monotonic() >= runtime.checkpoint_wall + settings.checkpoint_min_wall
 
@@ -554,10 +650,7 @@ class Hub:
 
     def estimate_times(self) -> dict[str, float | None]:
         """Each train's newest estimate time [s since the epoch], or None."""
-        return {
-            name: None if r.latest is None else float(r.latest["t"])
-            for name, r in list(self.trains.items())
-        }
+        return {name: r.latest_time for name, r in list(self.trains.items())}
 
     # ------------------------------------------------------------------ alerts
 
@@ -687,6 +780,13 @@ class Hub:
                 loop.call_soon_threadsafe(_offer, queue, (kind, item))
 
 
+@functools.cache
+def _phase(name: str) -> float:
+    """Return a train's phase in [0, 1), drawn from its name (stable across restarts) [-]."""
+    digest = hashlib.sha256(name.encode()).digest()
+    return int.from_bytes(digest[:4], "big") / 2.0**32
+
+
 def _settle_lag(runtime: Runtime) -> float:
     """How far back a reading arriving now can still revise estimates [s].
 
@@ -737,13 +837,22 @@ def _forget(runtime: Runtime, times: Sequence[float]) -> None:
         del runtime.unsettled[t]
 
 
+_NUMBERS = ("concentration", "concentration_std", "conversion", "conversion_std",
+            "design_conversion", "activity", "activity_std", "feed", "inputs")  # fmt: skip
+"""The columns of an estimate batch that are stored (besides its times)."""
+
+
+def _all_finite(batch: EstimateBatch) -> bool:
+    """Whether every stored number of a batch is finite (one check per column)."""
+    return all(bool(np.isfinite(getattr(batch, name)).all()) for name in _NUMBERS)
+
+
 def _finite_rows(batch: EstimateBatch) -> np.ndarray:
     """Mask of the rows whose every number is finite."""
     ok = np.ones(len(batch), dtype=bool)
     if not len(batch):
         return ok
-    for name in ("concentration", "concentration_std", "conversion", "conversion_std",
-                 "design_conversion", "activity", "activity_std", "feed", "inputs"):  # fmt: skip
+    for name in _NUMBERS:
         values = getattr(batch, name).reshape(len(batch), -1)
         ok &= np.isfinite(values).all(axis=1)
     return ok

@@ -42,10 +42,14 @@ fsync per transaction.
 from __future__ import annotations
 
 import functools
+import itertools
 import json
+import logging
 import math
+import sqlite3
+import threading
 import time
-from collections.abc import Callable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -103,6 +107,12 @@ __all__ = [
 _P = ParamSpec("_P")
 _R = TypeVar("_R")
 
+log = logging.getLogger("stagewatch.store")
+
+#: Interval of the background checkpoints of SQLite's write-ahead log [s]
+#: (:meth:`Store.start_wal_checkpoints`).
+WAL_CHECKPOINT_EVERY = 0.25
+
 #: How many checkpoints per train :meth:`Store.save_checkpoint` keeps.
 CHECKPOINTS_KEPT = 3
 
@@ -156,6 +166,16 @@ _PG_STORED = text(
     "SELECT r.tag, r.time, r.value "
     "FROM unnest(CAST(:tags AS text[]), CAST(:times AS float8[])) AS k(tag, time) "
     "JOIN readings r ON r.train_id = :train_id AND r.tag = k.tag AND r.time = k.time"
+)
+
+# Estimate writes, the same text on both backends and built once: a statement built
+# per call (and its cache key) cost more than the few rows a call writes.
+_ESTIMATES_DELETE = text(
+    "DELETE FROM estimates WHERE train_id = :train_id AND time >= :start AND time <= :stop"
+)
+_ESTIMATES_UPSERT = text(
+    "INSERT INTO estimates (train_id, time, payload) VALUES (:train_id, :time, :payload) "
+    "ON CONFLICT (train_id, time) DO UPDATE SET payload = excluded.payload"
 )
 
 IntArray = NDArray[np.int64]
@@ -493,13 +513,88 @@ def _guarded(method: Callable[_P, _R]) -> Callable[_P, _R]:
 # ---------------------------------------------------------------------------- store
 
 
-# The SQLite journal append, built once (a statement built per call costs more than
-# a single reading's insert).
-_SQLITE_APPEND = (
-    sqlite.insert(_Reading)
-    .on_conflict_do_nothing(index_elements=["train_id", "tag", "time"])
-    .returning(_Reading.id, _Reading.tag, _Reading.time)
-)
+#: Most readings in one SQLite journal statement: 4 parameters each and 2 shared
+#: stay under 999, the smallest limit on parameters an SQLite build may have.
+_SQLITE_APPEND_ROWS = 200
+
+
+@functools.lru_cache(maxsize=64)
+def _sqlite_append_sql(rows: int) -> str:
+    """Return the SQLite journal append of ``rows`` readings, as driver SQL.
+
+    Numbered parameters: ?1 is the train id and ?2 the arrival time, shared by every
+    row; each reading then has four (tag, time, value, quality). Driver SQL, built
+    once per batch size, because SQLAlchemy's multi-row insert compiles and binds
+    each row in Python, which cost more than SQLite's own work on the rows.
+    """
+    values = ",".join(f"(?1,?{k},?{k + 1},?{k + 2},?{k + 3},?2)" for k in range(3, 3 + 4 * rows, 4))
+    return (
+        "INSERT INTO readings (train_id, tag, time, value, quality, received_at) "
+        f"VALUES {values} ON CONFLICT (train_id, tag, time) DO NOTHING "
+        "RETURNING id, tag, time"
+    )
+
+
+def _sqlite_append(
+    driver: sqlite3.Connection,
+    train_id: int,
+    received_at: float,
+    rows: Iterable[tuple[str, float, float, int | None]],
+    n: int,
+) -> list[Any]:
+    """Insert ``n`` journal rows on SQLite; return (id, tag, time) of those inserted."""
+    inserted: list[Any] = []
+    rows = iter(rows)
+    for start in range(0, n, _SQLITE_APPEND_ROWS):
+        count = min(_SQLITE_APPEND_ROWS, n - start)
+        params: list[Any] = [train_id, received_at]
+        for row in itertools.islice(rows, count):
+            params += row
+        inserted += _driver_execute(driver, _sqlite_append_sql(count), params)
+    return inserted
+
+
+def _sqlite_stored_values(
+    driver: sqlite3.Connection, train_id: int, tags: list[str], times: list[float]
+) -> dict[tuple[str, float], float]:
+    """Return the stored value of each (tag, time) key that has one (SQLite driver).
+
+    Two IN lists walk the unique index (a row-value IN scans the train's journal);
+    the few extra rows they may match are ignored. Each list is cut into pieces of
+    at most :data:`_SQLITE_APPEND_ROWS` values, to stay within SQLite's limit on
+    parameters.
+    """
+    unique_tags = sorted(set(tags))
+    unique_times = sorted(set(times))
+    step = _SQLITE_APPEND_ROWS
+    found: dict[tuple[str, float], float] = {}
+    for i in range(0, len(unique_tags), step):
+        some_tags = unique_tags[i : i + step]
+        for j in range(0, len(unique_times), step):
+            some_times = unique_times[j : j + step]
+            sql = (
+                "SELECT tag, time, value FROM readings WHERE train_id = ? "
+                f"AND tag IN ({','.join('?' * len(some_tags))}) "
+                f"AND time IN ({','.join('?' * len(some_times))})"
+            )
+            for tag, t, value in _driver_execute(driver, sql, [train_id, *some_tags, *some_times]):
+                found[(tag, t)] = value
+    return found
+
+
+def _driver_execute(driver: Any, sql: str, params: Sequence[Any] = ()) -> list[Any]:
+    """Run one statement on an SQLite driver connection; return its rows as tuples.
+
+    For the statements of every ingest request: SQLAlchemy's execution path (an
+    execution context, a result, a row object per row) cost more than SQLite's own
+    work on them. A driver error is raised as SQLAlchemy raises it
+    (``OperationalError``, ``IntegrityError``, ...), so :func:`_guarded` and the
+    callers see no difference.
+    """
+    try:
+        return list(driver.execute(sql, params).fetchall())
+    except sqlite3.Error as exc:
+        raise DBAPIError.instance(sql, list(params), exc, sqlite3.Error) from exc
 
 
 class Store:
@@ -555,6 +650,9 @@ class Store:
             )
         self._postgresql = backend == "postgresql"
         self._writer = self._engine.execution_options(**{_WRITE: True})
+        self._sqlite_file = backend == "sqlite" and parsed.database not in (None, "", ":memory:")
+        self._wal_thread: threading.Thread | None = None
+        self._wal_stop = threading.Event()
 
     @property
     def engine(self) -> Engine:
@@ -572,8 +670,78 @@ class Store:
         _Base.metadata.create_all(self._writer)
 
     def close(self) -> None:
-        """Close every pooled connection."""
+        """Stop the background log checkpoints, if any, and close every pooled connection."""
+        self.stop_wal_checkpoints()
         self._engine.dispose()
+
+    def start_wal_checkpoints(self, every: float = WAL_CHECKPOINT_EVERY) -> None:
+        """Checkpoint SQLite's write-ahead log from a background thread (a file database only).
+
+        Parameters
+        ----------
+        every : float, optional
+            Interval between checkpoints [s].
+
+        Notes
+        -----
+        SQLite copies the log into the database file (with an fsync of each) in
+        the commit that takes the log past 1,000 pages, so that one writer of the
+        service waited milliseconds now and then, on the thread that serves every
+        request. Checkpointed this often from a thread of its own (PASSIVE: it
+        never waits for, nor blocks, a reader or the writer; SQLite releases the
+        GIL meanwhile), the log stays below that size under load and no commit
+        does the copy. Durability is unchanged: a commit is in the log when it
+        returns, as before. :meth:`stop_wal_checkpoints` (or :meth:`close`) stops
+        the thread; on PostgreSQL this does nothing.
+        """
+        if not self._sqlite_file or self._wal_thread is not None:
+            return
+        if not (math.isfinite(every) and every > 0):
+            raise ValueError(f"every must be a positive number of seconds, got {every!r}")
+        self._wal_stop.clear()
+        self._wal_thread = threading.Thread(
+            target=self._checkpoint_wal, args=(every,), name="stagewatch-wal", daemon=True
+        )
+        self._wal_thread.start()
+
+    def stop_wal_checkpoints(self) -> None:
+        """Stop the thread :meth:`start_wal_checkpoints` started (nothing if none runs)."""
+        thread, self._wal_thread = self._wal_thread, None
+        if thread is not None:
+            self._wal_stop.set()
+            thread.join()
+
+    @_guarded
+    def checkpoint_wal_once(self) -> tuple[int, int, int]:
+        """Checkpoint SQLite's write-ahead log once (PASSIVE), on a pooled connection.
+
+        Returns
+        -------
+        (int, int, int)
+            SQLite's answer: 1 if a lock stopped the checkpoint short (else 0), the
+            pages in the log, the pages copied into the database file so far; all
+            -1 on PostgreSQL, which keeps no such log.
+        """
+        if not self._sqlite_file:
+            return (-1, -1, -1)
+        fairy = self._engine.raw_connection()
+        try:
+            (row,) = _driver_execute(fairy.driver_connection, "PRAGMA wal_checkpoint(PASSIVE)")
+        finally:
+            fairy.close()
+        busy, logged, copied = row
+        return int(busy), int(logged), int(copied)
+
+    def _checkpoint_wal(self, every: float) -> None:
+        failing = False
+        while not self._wal_stop.wait(every):
+            try:
+                self.checkpoint_wal_once()
+                failing = False
+            except Exception as exc:  # a busy or full database: the next round tries again
+                if not failing:
+                    log.warning("SQLite log checkpoint failed (tried again): %s", exc)
+                failing = True
 
     def __enter__(self) -> Store:
         return self
@@ -585,6 +753,33 @@ class Store:
     def _write(self) -> Iterator[Connection]:
         with self._writer.begin() as conn:
             yield conn
+
+    @contextmanager
+    def _sqlite_write(self) -> Iterator[sqlite3.Connection]:
+        """Give a write transaction on a pooled SQLite connection's own driver.
+
+        BEGIN IMMEDIATE, then COMMIT when the block ends, ROLLBACK if it raises:
+        what :meth:`_write` does, without SQLAlchemy's connection and transaction
+        objects and events, which cost more than an ingest request's journal
+        insert. The connection comes from the engine's pool (configured by its
+        connect hook, replaced by :meth:`close` and ``dispose``) and goes back to
+        it; driver errors are raised as SQLAlchemy raises them (see
+        :func:`_driver_execute`).
+        """
+        fairy = self._engine.raw_connection()
+        try:
+            driver = fairy.driver_connection
+            assert isinstance(driver, sqlite3.Connection)
+            _driver_execute(driver, "BEGIN IMMEDIATE")
+            try:
+                yield driver
+                _driver_execute(driver, "COMMIT")
+            except BaseException:
+                if driver.in_transaction:
+                    driver.rollback()
+                raise
+        finally:
+            fairy.close()
 
     @contextmanager
     def _read(self) -> Iterator[Connection]:
@@ -764,7 +959,6 @@ class Store:
 
     # ------------------------------------------------------------------ journal
 
-    @_guarded
     def append_readings(
         self,
         train_id: int,
@@ -798,77 +992,143 @@ class Store:
 
         Notes
         -----
-        One INSERT ... ON CONFLICT DO NOTHING RETURNING for the whole batch (a
-        multi-row VALUES on SQLite; on PostgreSQL a SELECT from ``unnest`` of one
-        array per column, a short statement the driver need not parse at length);
-        only when some rows were not inserted does a second statement read the
-        stored values to tell duplicates from conflicts. Journal ids increase but
-        may skip numbers (a refused insert can use one up). On PostgreSQL appends to one
-        train are serialised by an advisory lock, so journal ids become visible in
-        increasing order and a reader never skips an id committed later.
+        The same as :meth:`append_columns`, which takes the batch as columns.
         """
         if not rows:
             return AppendResult((), (), (), (), ())
-        tags: list[str] = []
-        times: list[float] = []
-        values: list[float] = []
-        qualities: list[int | None] = []
-        first: dict[tuple[str, float], int] = {}
-        for position, (tag, t, v, quality) in enumerate(rows):
-            t, v = float(t), float(v)
-            if not (math.isfinite(t) and math.isfinite(v)):
-                raise ValueError(
-                    f"reading {position} ({tag!r}): time and value must be finite, "
-                    f"got time {t!r}, value {v!r}"
-                )
-            if quality is not None and not _SMALLINT[0] <= quality <= _SMALLINT[1]:
-                raise ValueError(
-                    f"reading {position} ({tag!r}): quality must be -32768..32767, got {quality}"
-                )
-            first.setdefault((tag, t), position)
-            tags.append(tag)
-            times.append(t)
-            values.append(v)
-            qualities.append(quality)
+        tags, times, values, qualities = zip(*rows, strict=True)
+        return self.append_columns(train_id, tags, times, values, qualities, received_at)
+
+    @_guarded
+    def append_columns(
+        self,
+        train_id: int,
+        tags: Sequence[str],
+        times: Sequence[float] | FloatArray,
+        values: Sequence[float] | FloatArray,
+        qualities: Sequence[int | None] | None,
+        received_at: float,
+    ) -> AppendResult:
+        """Journal a batch of readings given as columns; committed when this returns.
+
+        Parameters
+        ----------
+        train_id : int
+            The train's id.
+        tags : sequence of str, length k
+            Tag of each reading.
+        times : sequence or ndarray of float, length k
+            Reading time [s since the epoch].
+        values : sequence or ndarray of float, length k
+            Value in the tag's declared unit.
+        qualities : sequence of int or None, length k; or None
+            Source quality code of each reading (-32768..32767) or None; None for
+            the whole column when no reading has one.
+        received_at : float
+            When the batch arrived [s since the epoch].
+
+        Returns
+        -------
+        AppendResult
+            Which rows are new (with their journal ids), which repeat a stored
+            reading exactly, and which conflict with a stored value.
+
+        Raises
+        ------
+        ValueError
+            A time or value is not finite, or a quality does not fit in 16 bits.
+        TrainNotFound
+            No train has that id.
+
+        Notes
+        -----
+        One INSERT ... ON CONFLICT DO NOTHING RETURNING for the whole batch (on
+        SQLite a multi-row VALUES written as driver SQL, in statements of at most
+        :data:`_SQLITE_APPEND_ROWS` rows; on PostgreSQL a SELECT from ``unnest`` of
+        one array per column, a short statement the driver need not parse at
+        length); only when some rows were not inserted does a second statement read
+        the stored values to tell duplicates from conflicts. Journal ids increase
+        but may skip numbers (a refused insert can use one up). On PostgreSQL
+        appends to one train are serialised by an advisory lock, so journal ids
+        become visible in increasing order and a reader never skips an id
+        committed later.
+        """
+        n = len(tags)
+        if not n:
+            return AppendResult((), (), (), (), ())
+        t_array = np.asarray(times, dtype=np.float64)
+        v_array = np.asarray(values, dtype=np.float64)
+        if t_array.shape != (n,) or v_array.shape != (n,):
+            raise ValueError(f"times and values must have one entry per tag ({n})")
+        finite = np.isfinite(t_array) & np.isfinite(v_array)
+        if not finite.all():
+            position = int(np.argmin(finite))
+            raise ValueError(
+                f"reading {position} ({tags[position]!r}): time and value must be finite, "
+                f"got time {float(t_array[position])!r}, value {float(v_array[position])!r}"
+            )
+        quality_column: list[int | None]
+        if qualities is None:
+            quality_column = [None] * n
+        else:
+            quality_column = list(qualities)
+            if len(quality_column) != n:
+                raise ValueError(f"qualities must have one entry per tag ({n})")
+            for position, quality in enumerate(quality_column):
+                if quality is not None and not _SMALLINT[0] <= quality <= _SMALLINT[1]:
+                    raise ValueError(
+                        f"reading {position} ({tags[position]!r}): quality must be "
+                        f"-32768..32767, got {quality}"
+                    )
+        tag_list = list(tags)
+        time_list: list[float] = t_array.tolist()
+        value_list: list[float] = v_array.tolist()
+        keys = list(zip(tag_list, time_list, strict=True))
+        # The first position of each (tag, time): later ones overwrite earlier ones.
+        first = dict(zip(reversed(keys), range(n - 1, -1, -1), strict=True))
+        stored: dict[tuple[str, float], float] = {}
         try:
-            with self._write() as conn:
-                if self._postgresql:
+            if self._postgresql:
+                with self._write() as conn:
                     conn.execute(select(func.pg_advisory_xact_lock(_JOURNAL_LOCK_SPACE, train_id)))
-                    inserted = conn.execute(
+                    inserted: Sequence[Any] = conn.execute(
                         _PG_APPEND,
                         {
                             "train_id": train_id,
                             "received_at": float(received_at),
-                            "tags": tags,
-                            "times": times,
-                            "values": values,
-                            "qualities": qualities,
+                            "tags": tag_list,
+                            "times": time_list,
+                            "values": value_list,
+                            "qualities": quality_column,
                         },
                     ).all()
-                else:
-                    inserted = conn.execute(
-                        _SQLITE_APPEND,
-                        [
-                            {
-                                "train_id": train_id,
-                                "tag": tag,
-                                "time": t,
-                                "value": v,
-                                "quality": quality,
-                                "received_at": float(received_at),
-                            }
-                            for tag, t, v, quality in zip(
-                                tags, times, values, qualities, strict=True
-                            )
-                        ],
-                    ).all()
-                new = {first[(tag, t)]: int(journal_id) for journal_id, tag, t in inserted}
-                stored: dict[tuple[str, float], float] = {}
-                if len(new) < len(tags):
-                    missed = [i for i in range(len(tags)) if i not in new]
-                    stored = self._stored_values(
-                        conn, train_id, [tags[i] for i in missed], [times[i] for i in missed]
+                    new = {first[(tag, t)]: int(journal_id) for journal_id, tag, t in inserted}
+                    if len(new) < n:
+                        missed = [i for i in range(n) if i not in new]
+                        stored = self._stored_values(
+                            conn,
+                            train_id,
+                            [tag_list[i] for i in missed],
+                            [time_list[i] for i in missed],
+                        )
+            else:
+                with self._sqlite_write() as driver:
+                    inserted = _sqlite_append(
+                        driver,
+                        train_id,
+                        float(received_at),
+                        zip(tag_list, time_list, value_list, quality_column, strict=True),
+                        n,
                     )
+                    new = {first[(tag, t)]: int(journal_id) for journal_id, tag, t in inserted}
+                    if len(new) < n:
+                        missed = [i for i in range(n) if i not in new]
+                        stored = _sqlite_stored_values(
+                            driver,
+                            train_id,
+                            [tag_list[i] for i in missed],
+                            [time_list[i] for i in missed],
+                        )
         except IntegrityError as exc:
             if "foreign key" in str(exc.orig).lower():
                 raise TrainNotFound(f"no train with id {train_id}") from None
@@ -877,15 +1137,16 @@ class Store:
         duplicates: list[int] = []
         conflicts: list[int] = []
         conflicting: list[float] = []
-        for position, key in enumerate(zip(tags, times, strict=True)):
-            if position in new:
-                continue
-            value = stored[key]
-            if value == values[position]:
-                duplicates.append(position)
-            else:
-                conflicts.append(position)
-                conflicting.append(value)
+        if len(new) < n:
+            for position, key in enumerate(keys):
+                if position in new:
+                    continue
+                value = stored[key]
+                if value == value_list[position]:
+                    duplicates.append(position)
+                else:
+                    conflicts.append(position)
+                    conflicting.append(value)
         return AppendResult(
             tuple(positions),
             tuple(new[i] for i in positions),
@@ -897,21 +1158,8 @@ class Store:
     def _stored_values(
         self, conn: Connection, train_id: int, tags: list[str], times: list[float]
     ) -> dict[tuple[str, float], float]:
-        """Return the stored value of each (tag, time) key that has one, in one statement."""
-        if self._postgresql:
-            rows = conn.execute(
-                _PG_STORED, {"train_id": train_id, "tags": tags, "times": times}
-            ).all()
-        else:
-            # Two IN lists walk the unique index (a row-value IN scans the train's
-            # journal); the few extra rows they may match are ignored.
-            rows = conn.execute(
-                select(_Reading.tag, _Reading.time, _Reading.value).where(
-                    _Reading.train_id == train_id,
-                    _Reading.tag.in_(set(tags)),
-                    _Reading.time.in_(set(times)),
-                )
-            ).all()
+        """Return the stored value of each (tag, time) key that has one (PostgreSQL)."""
+        rows = conn.execute(_PG_STORED, {"train_id": train_id, "tags": tags, "times": times}).all()
         return {(tag, t): value for tag, t, value in rows}
 
     def readings_after(
@@ -982,7 +1230,10 @@ class Store:
                     _Reading.tag.in_(list(tags)),
                     _Reading.time >= start,
                     _Reading.time <= stop,
-                    _Reading.id <= upto,
+                    # "id + 0": a bare id bound let SQLite walk the train's whole
+                    # journal on (train_id, id) instead of each tag's time range on
+                    # (train_id, tag, time), a cost that grew with the journal.
+                    _Reading.id + 0 <= upto,
                 )
             ).all()
         return (
@@ -1050,21 +1301,12 @@ class Store:
                 raise ValueError(f"estimate row {k} (t = {t!r}): {exc}") from None
         if not by_time:
             return 0
-        insert = self._insert(_Estimate)
-        statement = insert.on_conflict_do_update(
-            index_elements=["train_id", "time"], set_={"payload": insert.excluded.payload}
-        )
         params = [{"train_id": train_id, "time": t, "payload": p} for t, p in by_time.items()]
         with self._write() as conn:
             if replace is not None:
-                conn.execute(
-                    delete(_Estimate).where(
-                        _Estimate.train_id == train_id,
-                        _Estimate.time >= replace[0],
-                        _Estimate.time <= replace[1],
-                    )
-                )
-            conn.execute(statement, params)
+                span = {"train_id": train_id, "start": replace[0], "stop": replace[1]}
+                conn.execute(_ESTIMATES_DELETE, span)
+            conn.execute(_ESTIMATES_UPSERT, params)
         return len(params)
 
     @_guarded
@@ -1524,10 +1766,14 @@ def _time_range(column: Any, start: float | None, end: float | None) -> list[Col
 
 
 def _sqlite_engine(url: URL, timeout: float, synchronous: str) -> Engine:
+    # LIFO: the ingest path takes back the connection it used last, whose page cache
+    # holds the journal's hot pages, rather than cycling through every pooled one
+    # (each warming a cache of its own).
     engine = create_engine(
         url,
         connect_args={"timeout": timeout, "check_same_thread": False},
         pool_timeout=timeout,
+        pool_use_lifo=True,
     )
     busy_ms = int(timeout * 1000)
 
@@ -1551,7 +1797,9 @@ def _sqlite_engine(url: URL, timeout: float, synchronous: str) -> Engine:
         # a deferred BEGIN that upgrades later can fail at once with "locked"
         # whatever the timeout. Readers stay deferred and never block in WAL.
         immediate = conn.get_execution_options().get(_WRITE, False)
-        conn.exec_driver_sql("BEGIN IMMEDIATE" if immediate else "BEGIN")
+        _driver_execute(
+            conn.connection.driver_connection, "BEGIN IMMEDIATE" if immediate else "BEGIN"
+        )
 
     return engine
 

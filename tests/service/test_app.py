@@ -10,12 +10,15 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from fastapi.encoders import jsonable_encoder
 from fastapi.testclient import TestClient
+from pydantic import ValidationError
 
 from estimator.config import load_train_config
 from estimator.session import TrainSession
 from service.app import create_app
 from service.auth import hash_key
+from service.schemas import ReadingsIn
 from service.settings import Settings
 from service.store import Store
 
@@ -132,6 +135,29 @@ def test_bad_requests_are_422_naming_the_field(client: TestClient):
     assert r.status_code == 422
     assert any(d["loc"][-1] == "volume" for d in r.json()["detail"])
     assert client.get("/api/v1/trains/nope").status_code == 404
+
+
+@pytest.mark.parametrize(
+    "body",
+    [
+        {"readings": [{"tag": "FI-200", "time": 1.7e9, "value": True}]},
+        {"readings": [{"tag": "", "time": -1, "value": 1.0, "quality": 300}]},
+        {"readings": [{"tag": "FI-200", "time": "2026-01-01T00:00:00", "value": 1.0}]},
+        {"readings": [{"tag": "FI-200\u0000", "time": 1.7e9, "value": 1.0}]},
+        {"readings": [{"tag": "FI-200", "time": 1.7e9}], "train": "x"},
+        {"readings": []},
+        [],
+    ],
+)
+def test_a_bad_batch_gets_the_models_own_422(client: TestClient, body: object):
+    # The route validates straight into columns; its refusals are still ReadingsIn's,
+    # as the framework reports a model's errors (located under "body").
+    r = client.post(f"{URL}/readings", json=body)
+    assert r.status_code == 422
+    with pytest.raises(ValidationError) as caught:
+        ReadingsIn.model_validate(body, from_attributes=True)
+    want = [{**e, "loc": ["body", *e["loc"]]} for e in caught.value.errors(include_url=False)]
+    assert r.json()["detail"] == jsonable_encoder(want)
 
 
 def test_train_versions_and_retirement(client: TestClient, database_url: str):

@@ -190,6 +190,94 @@ def test_append_refuses_non_finite_readings_and_unknown_trains(store: Store):
     assert store.append_readings(train, [], T0).new_ids == ()
 
 
+def test_a_large_batch_as_columns_is_journaled_in_order_across_statements(store: Store):
+    # 450 readings: more than one SQLite statement's worth, with repeats and conflicts
+    # whose first occurrence lies in another statement's piece of the batch.
+    train = new_train(store)
+    tags = [f"T-{k % 7}" for k in range(450)]
+    times = np.array([T0 + k // 7 for k in range(450)], dtype=np.float64)
+    values = np.arange(450, dtype=np.float64)
+    first = store.append_columns(train, tags, times, values, None, received_at=T0)
+    assert first.new_positions == tuple(range(450))
+    assert list(first.new_ids) == sorted(first.new_ids)
+    assert [v for *_, v in journal(store, train)] == values.tolist()
+
+    again = [(tags[k], float(times[k]), float(values[k]), None) for k in (3, 449, 200)]
+    changed = [("T-0", T0, 99.0, None), ("T-6", float(times[440]), 1.0, 7)]
+    fresh = [("T-9", T0 + 1000.0 + k, float(k), 192) for k in range(300)]
+    rows = fresh[:150] + again + changed + fresh[150:] + fresh[:2]  # 2 repeats of new rows
+    result = store.append_readings(train, rows, received_at=T0 + 1)
+    assert result.new_positions == tuple(range(150)) + tuple(range(155, 305))
+    assert result.duplicates == (150, 151, 152, 305, 306)
+    assert result.conflicts == (153, 154)
+    assert result.conflicting_values == (0.0, 440.0)
+    stored = journal(store, train)
+    assert len(stored) == 750
+    assert [v for *_, v in stored[450:]] == [float(k) for k in range(300)]
+
+
+def test_append_columns_checks_each_column(store: Store):
+    train = new_train(store)
+    with pytest.raises(ValueError, match=r"reading 1 \('B'\): time and value must be finite"):
+        store.append_columns(train, ["A", "B"], [T0, T0], [1.0, math.inf], None, T0)
+    with pytest.raises(ValueError, match="one entry per tag"):
+        store.append_columns(train, ["A", "B"], [T0], [1.0], None, T0)
+    with pytest.raises(ValueError, match=r"reading 0 \('A'\): quality must be"):
+        store.append_columns(train, ["A"], [T0], [1.0], [40000], T0)
+    assert journal(store, train) == []
+
+
+def test_a_late_reading_reads_back_by_tag_and_time_not_the_whole_journal(tmp_path: Path):
+    # The filter reads the journal back for a reading older than its memory. SQLite
+    # must walk each tag's time range on (train, tag, time), not every journal row of
+    # the train up to the applied id on (train, id): that grew with the journal.
+    with Store(f"sqlite:///{tmp_path / 'plan.db'}") as store:
+        store.create_all()
+        train = new_train(store)
+        store.append_readings(train, [("TI-201", T0 + s, 80.0, None) for s in range(50)], T0)
+        seen: list[tuple[str, tuple[object, ...]]] = []
+
+        @event.listens_for(store.engine, "before_cursor_execute")
+        def _keep(_c: object, _cur: object, sql: str, params: object, *_: object) -> None:
+            if "FROM readings" in sql:
+                seen.append((sql, tuple(params)))  # type: ignore[arg-type]
+
+        tags, times, _ = store.readings_between(
+            train, ["TI-201", "FI-200"], T0 + 10, T0 + 19, upto=10**9
+        )
+        assert sorted(times.tolist()) == [T0 + s for s in range(10, 20)] and set(tags) == {"TI-201"}
+        ((sql, params),) = seen
+        with store.engine.connect() as conn:
+            plan = " ".join(
+                str(row[-1]) for row in conn.exec_driver_sql("EXPLAIN QUERY PLAN " + sql, params)
+            )
+        assert "ix_readings_train_journal" not in plan, plan
+        assert "tag=?" in plan and "time>?" in plan, plan
+
+
+def test_the_log_is_checkpointed_in_the_background_and_the_thread_stops(tmp_path: Path):
+    with Store(f"sqlite:///{tmp_path / 'wal.db'}") as store:
+        store.create_all()
+        train = new_train(store)
+        store.append_readings(train, [("TI-201", T0 + s, 80.0, None) for s in range(500)], T0)
+        busy, logged, copied = store.checkpoint_wal_once()
+        assert busy == 0 and logged > 0 and copied == logged  # one round copies the log
+        store.start_wal_checkpoints(every=0.01)
+        thread = store._wal_thread
+        assert thread is not None and thread.is_alive()
+        store.start_wal_checkpoints(every=0.01)  # a second start changes nothing
+        assert store._wal_thread is thread
+    assert store._wal_thread is None and not thread.is_alive()  # close() stopped it
+
+
+def test_background_log_checkpoints_are_sqlite_only(database_url: str):
+    with Store(database_url) as store:
+        store.start_wal_checkpoints()
+        assert (store._wal_thread is not None) == (store.dialect == "sqlite")
+        if store.dialect == "postgresql":
+            assert store.checkpoint_wal_once() == (-1, -1, -1)
+
+
 # ---------------------------------------------------------------------------- estimates
 
 
