@@ -269,6 +269,8 @@ class AlertEngine:
         self._nis = np.empty((0, 4))
         self._activity = np.empty((0, 3))  # rows of (time, activity, activity_std)
         self._expected = np.empty((0, 1 + self._n))  # rows of (time, expected per vessel)
+        # (tail probability, degrees of freedom) -> NIS-per-dof bounds (_nis_bounds).
+        self._bounds: dict[tuple[float, float], tuple[float, float]] = {}
         self._register()
 
     def _register(self) -> None:
@@ -1040,8 +1042,7 @@ class AlertEngine:
         safe = np.where(enough, dof, 1.0)
         per = nis / safe
         tail = 0.5 * (1.0 - rule.probability)
-        upper = chi2.ppf(1.0 - tail, safe) / safe
-        lower = chi2.ppf(tail, safe) / safe
+        lower, upper = self._nis_bounds(tail, safe)
         db = rule.deadband
         on = enough & ((per > upper) | (per < lower))
         off = ~enough | ((per <= upper - db) & (per >= lower + db))
@@ -1105,6 +1106,26 @@ class AlertEngine:
             "",
             describe,
         )
+
+    def _nis_bounds(self, tail: float, dof: FloatArray) -> tuple[FloatArray, FloatArray]:
+        """Chi-square bounds of NIS per degree of freedom, ``tail`` outside each [-].
+
+        Remembered per number of degrees of freedom: a window's count changes little
+        between evaluations, and scipy's quantile costs more than the whole rule.
+        """
+        cache = self._bounds
+        if len(cache) > 4096:
+            cache.clear()
+        keys = np.unique(dof)
+        new = np.array([k for k in keys.tolist() if (tail, k) not in cache], dtype=np.float64)
+        if new.size:
+            lows = chi2.ppf(tail, new) / new
+            highs = chi2.ppf(1.0 - tail, new) / new
+            for k, lo, hi in zip(new.tolist(), lows.tolist(), highs.tolist(), strict=True):
+                cache[(tail, k)] = (lo, hi)
+        pairs = np.array([cache[(tail, k)] for k in keys.tolist()], dtype=np.float64)
+        at = np.searchsorted(keys, dof)
+        return pairs[at, 0], pairs[at, 1]
 
     def _show_flow(self, q: float) -> str:
         unit, scale, offset = self._units.get(self.config.feed.flow.tag, ("m^3/s", 1.0, 0.0))

@@ -828,3 +828,18 @@ def test_slow_deactivation_is_alerted_before_the_shortfall_reaches_five_points()
     gap = float(np.max(design_conversion(session.model, sim.inputs[k : k + 1])[0] - true_x))
     assert first.time > sim.times[0] + DAY  # nothing before the decline starts
     assert 0.0 < gap < 0.05
+
+
+def test_remembered_nis_bounds_equal_scipys_chi_square_quantiles():
+    # The mismatch rule's two-sided bounds of NIS per degree of freedom are
+    # chi2.ppf(tail, D) / D and chi2.ppf(1 - tail, D) / D (Bar-Shalom, Li &
+    # Kirubarajan 2001, sec. 5.4); remembered per D, they must stay scipy's numbers.
+    from scipy.stats import chi2
+
+    engine = AlertEngine(CONFIG)
+    dof = np.array([1.0, 20.0, 20.0, 37.0, 300.0, 1.0])
+    for _ in range(2):  # computed, then remembered
+        low, high = engine._nis_bounds(0.0005, dof)
+        np.testing.assert_array_equal(low, chi2.ppf(0.0005, dof) / dof)
+        np.testing.assert_array_equal(high, chi2.ppf(0.9995, dof) / dof)
+    assert high[1] == pytest.approx(chi2.ppf(0.9995, 20) / 20) and low[0] < 1e-5
