@@ -16,9 +16,9 @@ from typing import Annotated, Any
 
 import typer
 
-__all__ = ["app", "main"]
+from service.cli_support import fail
 
-EXIT_INPUT_ERROR = 2
+__all__ = ["app", "main"]
 
 app = typer.Typer(
     name="stagewatch",
@@ -29,26 +29,6 @@ app = typer.Typer(
     no_args_is_help=True,
     add_completion=False,
 )
-
-
-def _fail(message: str, code: int = EXIT_INPUT_ERROR) -> typer.Exit:
-    """Print ``message`` to stderr and build the exit to raise.
-
-    Parameters
-    ----------
-    message : str
-        What went wrong and, where it helps, what to do about it.
-    code : int
-        Process exit status.
-
-    Returns
-    -------
-    typer.Exit
-        The exception for the caller to raise (``raise _fail(...)``), so that
-        type checkers see the command end there.
-    """
-    typer.echo(message, err=True)
-    return typer.Exit(code)
 
 
 def _plural(count: int, noun: str) -> str:
@@ -71,7 +51,7 @@ def version() -> None:
     try:
         typer.echo(f"stagewatch {package_version('stagewatch')}")
     except PackageNotFoundError:
-        raise _fail("stagewatch is not installed; run `make venv` first", code=1) from None
+        raise fail("stagewatch is not installed; run `make venv` first", code=1) from None
 
 
 @app.command(help="Validate a train configuration (TOML) and summarise it.")
@@ -101,7 +81,7 @@ def check(
     """
     if not train.is_file():
         what = "is not a file" if train.exists() else "does not exist"
-        raise _fail(f"error: {train} {what}")
+        raise fail(f"error: {train} {what}")
 
     from estimator.config import load_train_config
     from estimator.errors import ConfigError
@@ -109,9 +89,9 @@ def check(
     try:
         config = load_train_config(train)
     except ConfigError as exc:
-        raise _fail(str(exc)) from None
+        raise fail(str(exc)) from None
     except OSError as exc:
-        raise _fail(f"error: cannot read {train}: {exc.strerror or exc}") from None
+        raise fail(f"error: cannot read {train}: {exc.strerror or exc}") from None
 
     typer.echo(
         f"ok: {config.name}, {_plural(len(config.vessels), 'vessel')}, "
@@ -148,7 +128,7 @@ def demo(
     import math
 
     if not (math.isfinite(hours) and hours > 0):
-        raise _fail(f"error: --hours must be a positive number of hours, got {hours}")
+        raise fail(f"error: --hours must be a positive number of hours, got {hours}")
 
     from service.demo import run_demo
 
@@ -238,17 +218,17 @@ def simulate_command(
     import time
 
     if form not in _FORMS:
-        raise _fail(f"error: --form must be one of {', '.join(_FORMS)}, got {form!r}")
+        raise fail(f"error: --form must be one of {', '.join(_FORMS)}, got {form!r}")
     if file_format not in _FORMATS:
-        raise _fail(f"error: --format must be one of {', '.join(_FORMATS)}, got {file_format!r}")
+        raise fail(f"error: --format must be one of {', '.join(_FORMATS)}, got {file_format!r}")
     if days is not None and not (math.isfinite(days) and days > 0):
-        raise _fail(f"error: --days must be a positive number of days, got {days}")
+        raise fail(f"error: --days must be a positive number of days, got {days}")
     if not (math.isfinite(truth_every) and truth_every > 0):
-        raise _fail(f"error: --truth-every must be a positive number of seconds, got {truth_every}")
+        raise fail(f"error: --truth-every must be a positive number of seconds, got {truth_every}")
     for path in (config, scenario):
         if not path.is_file():
             what = "is not a file" if path.exists() else "does not exist"
-            raise _fail(f"error: {path} {what}")
+            raise fail(f"error: {path} {what}")
 
     from estimator.config import load_train_config
     from estimator.errors import ConfigError
@@ -266,7 +246,7 @@ def simulate_command(
         train = load_train_config(config)
         plan = load_scenario(scenario, train)
     except ConfigError as exc:
-        raise _fail(_problem_lines(exc)) from None
+        raise fail(_problem_lines(exc)) from None
     if days is not None:
         plan = dataclasses.replace(plan, duration=days * 86400.0)
     model = TrainModel.from_config(train)
@@ -274,7 +254,7 @@ def simulate_command(
     try:
         run = simulate(model, plan, seed=seed)
     except ValueError as exc:
-        raise _fail(f"error: {scenario}: {exc}") from None
+        raise fail(f"error: {scenario}: {exc}") from None
     elapsed = time.perf_counter() - began
 
     readings = simulation_columns(run, train)
@@ -292,9 +272,9 @@ def simulate_command(
         write_archive(archive_path, readings, form="wide" if form == "wide" else "long")
         rows = write_truth(truth_path, run, model, every=truth_every)
     except ArchiveError as exc:
-        raise _fail(f"error: {exc}", code=1) from None
+        raise fail(f"error: {exc}", code=1) from None
     except OSError as exc:
-        raise _fail(f"error: cannot write into {out}: {exc.strerror or exc}", code=1) from None
+        raise fail(f"error: cannot write into {out}: {exc.strerror or exc}", code=1) from None
 
     steps = len(run.times) - 1
     typer.echo(
@@ -372,11 +352,11 @@ def replay_command(
     import math
 
     if not (math.isfinite(chunk_hours) and chunk_hours > 0):
-        raise _fail(f"error: --chunk-hours must be a positive number of hours, got {chunk_hours}")
+        raise fail(f"error: --chunk-hours must be a positive number of hours, got {chunk_hours}")
     for path in (archive, config, truth):
         if path is not None and not path.is_file():
             what = "is not a file" if path.exists() else "does not exist"
-            raise _fail(f"error: {path} {what}")
+            raise fail(f"error: {path} {what}")
 
     from estimator.config import load_train_config
     from estimator.errors import ConfigError
@@ -386,7 +366,7 @@ def replay_command(
     try:
         train = load_train_config(config)
     except ConfigError as exc:
-        raise _fail(_problem_lines(exc)) from None
+        raise fail(_problem_lines(exc)) from None
     try:
         summary = run_replay(
             archive,
@@ -398,9 +378,9 @@ def replay_command(
             ignore_unknown=ignore_unknown,
         )
     except ArchiveError as exc:
-        raise _fail("error: " + " ".join(str(exc).split())) from None
+        raise fail("error: " + " ".join(str(exc).split())) from None
     except OSError as exc:
-        raise _fail(f"error: cannot write into {out}: {exc.strerror or exc}", code=1) from None
+        raise fail(f"error: cannot write into {out}: {exc.strerror or exc}", code=1) from None
     for line in _replay_lines(summary):
         typer.echo(line)
 
@@ -482,7 +462,7 @@ def serve(
             overrides["port"] = port
         settings = load_settings(**overrides)
     except SettingsError as exc:
-        raise _fail(f"error: {exc}") from None
+        raise fail(f"error: {exc}") from None
 
     import uvicorn
 
@@ -492,13 +472,13 @@ def serve(
     try:
         store = _open_store(settings)
     except SchemaError as exc:
-        raise _fail(f"error: {exc}") from None
+        raise fail(f"error: {exc}") from None
     keys = any(k.revoked_at is None for k in store.list_api_keys())
     try:
         check_listen_safety(settings, keys_configured=keys)
     except UnsafeBinding as exc:
         store.close()
-        raise _fail(f"error: {exc}") from None
+        raise fail(f"error: {exc}") from None
     for path in train or []:
         _register_train(store, path)
     app_ = create_app(settings, store=store)
@@ -516,7 +496,7 @@ def live_demo(
 ) -> None:
     """Start the service on 127.0.0.1 and feed it the demo month until Ctrl-C."""
     if not speed > 0:
-        raise _fail(f"error: --speed must be positive, got {speed}")
+        raise fail(f"error: --speed must be positive, got {speed}")
     from service.live_demo import run_live_demo
 
     run_live_demo(port=port, speed=speed)
@@ -530,7 +510,7 @@ def _register_train(store: Any, path: Path) -> None:
     try:
         config = load_train_config(path)
     except ConfigError as exc:
-        raise _fail(str(exc)) from None
+        raise fail(str(exc)) from None
     if store.get_train(config.name) is None:
         store.create_train(config.name, config.title, config.model_dump_json(), path.read_text())
 
@@ -575,7 +555,7 @@ def bridge(
     """
     if not config.is_file():
         what = "is not a file" if config.exists() else "does not exist"
-        raise _fail(f"error: {config} {what}")
+        raise fail(f"error: {config} {what}")
 
     from estimator.errors import ConfigError
     from service.bridge.config import load_bridge_config
@@ -584,12 +564,12 @@ def bridge(
     try:
         settings = load_bridge_config(config)
     except ConfigError as exc:
-        raise _fail(_problem_lines(exc)) from None
+        raise fail(_problem_lines(exc)) from None
     configure_logging(json_logs)
     try:
         status = run_bridge(settings, once=once)
     except BridgeSetupError as exc:
-        raise _fail(f"error: {config}: {exc}") from None
+        raise fail(f"error: {config}: {exc}") from None
     if status:
         raise typer.Exit(status)
 

@@ -16,21 +16,15 @@ unsupported database URL).
 
 from __future__ import annotations
 
-from collections.abc import Iterator
-from contextlib import contextmanager
 from datetime import UTC, datetime
-from pathlib import Path
-from typing import TYPE_CHECKING, Annotated
+from typing import Annotated
 
 import typer
 
-if TYPE_CHECKING:
-    from service.auth import KeyStore
+from service.cli_support import fail, open_database
 
 __all__ = ["keys_app"]
 
-EXIT_FAILURE = 1
-EXIT_INPUT_ERROR = 2
 MAX_NAME_LENGTH = 100
 
 keys_app = typer.Typer(
@@ -41,101 +35,17 @@ keys_app = typer.Typer(
 )
 
 
-def _fail(message: str, code: int = EXIT_INPUT_ERROR) -> typer.Exit:
-    """Print ``message`` to stderr and build the exit for the caller to raise.
-
-    Parameters
-    ----------
-    message : str
-        One line: what went wrong and what to do.
-    code : int
-        Process exit status.
-
-    Returns
-    -------
-    typer.Exit
-        The exception to raise (``raise _fail(...)``).
-    """
-    typer.echo(message, err=True)
-    return typer.Exit(code)
-
-
-@contextmanager
-def _open_store() -> Iterator[KeyStore]:
-    """Open the service's store from the settings, creating its tables if new.
-
-    An existing database must have this version's schema (see
-    :func:`service.migrations.prepare_schema`).
-
-    Yields
-    ------
-    KeyStore
-        The store, closed again when the block ends.
-
-    Raises
-    ------
-    typer.Exit
-        Status 2 for invalid settings, 1 when the database cannot be opened.
-    """
-    from sqlalchemy.exc import ArgumentError, SQLAlchemyError
-
-    from service.migrations import SchemaError, prepare_schema
-    from service.settings import SettingsError, load_settings
-    from service.store import Store, StoreUnavailable
-
-    try:
-        settings = load_settings()
-    except SettingsError as exc:
-        raise _fail(str(exc)) from None
-    url = settings.database_url
-    shown = _safe_url(url)
-    try:
-        store = Store(url)
-    except (ValueError, ArgumentError) as exc:
-        raise _fail(f"database_url: {_one_line(exc)}") from None
-    try:
-        if url.startswith("sqlite:///"):
-            Path(url.removeprefix("sqlite:///")).parent.mkdir(parents=True, exist_ok=True)
-        prepare_schema(store)
-    except (OSError, SQLAlchemyError, SchemaError, StoreUnavailable) as exc:
-        store.close()
-        raise _fail(f"cannot open the database {shown}: {_one_line(exc)}", EXIT_FAILURE) from None
-    try:
-        yield store
-    except StoreUnavailable as exc:
-        raise _fail(f"cannot use the database {shown}: {exc}", EXIT_FAILURE) from None
-    finally:
-        store.close()
-
-
-def _safe_url(url: str) -> str:
-    """Return ``url`` with any password masked, for messages."""
-    from sqlalchemy.engine import make_url
-    from sqlalchemy.exc import ArgumentError
-
-    try:
-        return make_url(url).render_as_string(hide_password=True)
-    except ArgumentError:
-        return url
-
-
-def _one_line(exc: BaseException) -> str:
-    """Return the first line of an exception's message (drivers add pages of context)."""
-    text = str(exc).strip()
-    return text.splitlines()[0] if text else type(exc).__name__
-
-
 def _check_name(name: str) -> str:
     """Return ``name`` stripped, or exit 2 when it cannot name a key."""
     name = name.strip()
     if not name:
-        raise _fail("--name must not be empty")
+        raise fail("--name must not be empty")
     if name.isdigit():
-        raise _fail(f"--name {name!r}: a name must not be all digits (revoke takes ids too)")
+        raise fail(f"--name {name!r}: a name must not be all digits (revoke takes ids too)")
     if len(name) > MAX_NAME_LENGTH:
-        raise _fail(f"--name: at most {MAX_NAME_LENGTH} characters, got {len(name)}")
+        raise fail(f"--name: at most {MAX_NAME_LENGTH} characters, got {len(name)}")
     if not name.isprintable():
-        raise _fail(f"--name {name!r}: only printable characters")
+        raise fail(f"--name {name!r}: only printable characters")
     return name
 
 
@@ -177,12 +87,12 @@ def create_key(
         chosen = Role(role.strip().lower())
     except ValueError:
         choices = ", ".join(r.value for r in Role)
-        raise _fail(f"unknown role {role!r}: choose one of {choices}") from None
+        raise fail(f"unknown role {role!r}: choose one of {choices}") from None
     name = _check_name(name)
-    with _open_store() as store:
+    with open_database(check_schema=True) as (store, _):
         clash = [k for k in store.list_api_keys() if k.name == name and k.revoked_at is None]
         if clash:
-            raise _fail(
+            raise fail(
                 f"a key named {name!r} exists already (id {clash[0].id}): "
                 "choose another name or revoke that key first"
             )
@@ -199,7 +109,7 @@ def create_key(
 @keys_app.command("list", help="List API keys: id, name, role, created, revoked.")
 def list_keys() -> None:
     """Print every key, revoked ones included, one a line under a header."""
-    with _open_store() as store:
+    with open_database(check_schema=True) as (store, _):
         records = sorted(store.list_api_keys(), key=lambda k: k.id)
     if not records:
         typer.echo("no API keys: create one with `stagewatch keys create --role admin`", err=True)
@@ -240,10 +150,10 @@ def revoke_key(
 
     target = id_or_name.strip()
     which: int | str = int(target) if target.isdigit() else target
-    with _open_store() as store:
+    with open_database(check_schema=True) as (store, _):
         revoked = store.revoke_api_key(which)
     if not revoked:
-        raise _fail(f"no valid API key with id or name {target!r} (see `stagewatch keys list`)")
+        raise fail(f"no valid API key with id or name {target!r} (see `stagewatch keys list`)")
     typer.echo(
         f"revoked API key {target!r}; running services refuse it within {DEFAULT_CACHE_TTL:g} s"
     )
