@@ -55,6 +55,7 @@ from schemathesis.checks import (
     status_code_conformance,
 )
 
+from estimator.alarm_state import AlertState
 from service.app import create_app
 from service.auth import hash_key
 from service.settings import Settings
@@ -115,14 +116,7 @@ def service(database_url: str, tmp_path: Path) -> Iterator[Service]:
         admin = {"Authorization": f"Bearer {KEYS['admin']}"}
         created = client.post("/api/v1/trains", json={"toml": DEMO.read_text()}, headers=admin)
         assert created.status_code == 201, created.text
-        states = [
-            "normal",
-            "active_unacknowledged",
-            "active_acknowledged",
-            "cleared_unacknowledged",
-            "shelved",
-            "out_of_service",
-        ]
+        states = [state.value for state in AlertState]
         alerts = client.get(
             f"/api/v1/trains/{NAME}/alerts", params={"state": states}, headers=admin
         )

@@ -16,6 +16,7 @@ from typing import Any
 import pytest
 from playwright.sync_api import Locator, Page, expect
 
+from estimator.alarm_state import AlertState
 from tests.service.test_alerts_api import OPERATOR, READER, WARNING_R201
 from tests.service.test_app import NAME
 from tests.web.live import ALERT_TRAIN, LiveService
@@ -24,14 +25,7 @@ Screenshot = Callable[[Page, str], Path]
 KEY_ITEM = "stagewatch.apiKey"
 VESSELS = ("R-201", "R-202", "R-203")
 NOTICE = re.compile(r"monitoring aid, not a safety system.*site procedures", re.S)
-STATES = (
-    "normal",
-    "active_unacknowledged",
-    "active_acknowledged",
-    "cleared_unacknowledged",
-    "shelved",
-    "out_of_service",
-)
+STATES = tuple(state.value for state in AlertState)
 
 
 def use_key(page: Page, key: str) -> None:
