@@ -965,34 +965,10 @@ class Store:
         rows: Sequence[tuple[str, float, float, int | None]],
         received_at: float,
     ) -> AppendResult:
-        """Journal a batch of readings; committed (durable) when this returns.
+        """Journal a batch of readings given as rows (tag, time, value, quality).
 
-        Parameters
-        ----------
-        train_id : int
-            The train's id.
-        rows : sequence of (tag, time, value, quality)
-            Time [s since the epoch], value in the tag's declared unit, quality a
-            source code (-32768..32767) or None.
-        received_at : float
-            When the batch arrived [s since the epoch].
-
-        Returns
-        -------
-        AppendResult
-            Which rows are new (with their journal ids), which repeat a stored
-            reading exactly, and which conflict with a stored value.
-
-        Raises
-        ------
-        ValueError
-            A time or value is not finite, or a quality does not fit in 16 bits.
-        TrainNotFound
-            No train has that id.
-
-        Notes
-        -----
-        The same as :meth:`append_columns`, which takes the batch as columns.
+        :meth:`append_columns` with the batch as rows: the same parameters (but
+        ``rows``), result, errors and durability.
         """
         if not rows:
             return AppendResult((), (), (), (), ())
