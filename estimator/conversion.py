@@ -22,20 +22,12 @@ import numba
 import numpy as np
 
 from estimator.model import (
-    FP_DH,
-    FP_EA,
-    FP_K_EQ_REF,
-    FP_K_REF,
-    FP_T_REF,
-    FP_VOLUME,
-    GAS_CONSTANT,
     IP_N,
-    IP_PRODUCT,
     IP_REACTANT,
-    IP_REVERSIBLE,
     IP_S,
     FloatArray,
     TrainModel,
+    steady_concentrations_into,
 )
 from estimator.propagate import propagate_into, workspace
 
@@ -65,37 +57,31 @@ def design_conversion(
 
     Notes
     -----
-    Each vessel solves ``(d + k) C_A - k_r C_B = d A_in`` and
-    ``-k C_A + (d + k_r) C_B = d B_in`` with ``d = q / V`` and ``k_r = k / K_eq``
-    (zero when irreversible), by Cramer's rule with d cancelled.
+    Each row is :func:`estimator.model.steady_concentrations` at its inputs (each
+    vessel's balances for A and B solved from its inlet).
     """
-    ip, fp = model.ip, model.fp
     a = model.config.estimator.design_activity if activity is None else activity
-    u = np.atleast_2d(np.asarray(inputs, dtype=np.float64))
-    n_vessels = int(ip[IP_N])
-    ia, ib = int(ip[IP_REACTANT]), int(ip[IP_PRODUCT])
-    feed_a = u[:, 1 + n_vessels + ia]
-    c_a = feed_a.copy()
-    c_b = u[:, 1 + n_vessels + ib].copy()
-    out = np.zeros((len(u), n_vessels))
-    for i in range(n_vessels):
-        temperature = u[:, 1 + i]
-        inv = 1.0 / temperature - 1.0 / fp[FP_T_REF]
-        k = a * fp[FP_K_REF] * np.exp(-fp[FP_EA] / GAS_CONSTANT * inv)
-        if ip[IP_REVERSIBLE] == 1:
-            k_eq = fp[FP_K_EQ_REF] * np.exp(-fp[FP_DH] / GAS_CONSTANT * inv)
-            k_r = k / k_eq
-        else:
-            k_r = np.zeros_like(k)
-        d = u[:, 0] / fp[FP_VOLUME + i]
-        total = d + k + k_r
-        safe = np.where(total > 0.0, total, 1.0)
-        new_a = np.where(total > 0.0, ((d + k_r) * c_a + k_r * c_b) / safe, c_a)
-        new_b = np.where(total > 0.0, (k * c_a + (d + k) * c_b) / safe, c_b)
-        c_a, c_b = new_a, new_b
-        with np.errstate(divide="ignore", invalid="ignore"):
-            out[:, i] = np.where(feed_a > 0.0, 1.0 - c_a / feed_a, 0.0)
+    u = np.ascontiguousarray(np.atleast_2d(np.asarray(inputs, dtype=np.float64)))
+    out = np.empty((len(u), int(model.ip[IP_N])))
+    _steady_conversions(u, float(a), model.ip, model.fp, out)
     return out
+
+
+@numba.njit(cache=True, error_model="numpy")
+def _steady_conversions(
+    inputs: FloatArray, activity: float, ip: np.ndarray, fp: FloatArray, out: FloatArray
+) -> None:
+    """Write :func:`design_conversion` of each row of ``inputs`` into ``out`` (k, N)."""
+    n_v = ip[IP_N]
+    n_s = inputs.shape[1] - 1 - n_v
+    ia = ip[IP_REACTANT]
+    conc = np.empty(n_v * n_s)
+    for r in range(inputs.shape[0]):
+        u = inputs[r]
+        steady_concentrations_into(u[0], u[1 : 1 + n_v], u[1 + n_v :], activity, ip, fp, conc)
+        feed = u[1 + n_v + ia]
+        for i in range(n_v):
+            out[r, i] = 1.0 - conc[i * n_s + ia] / feed if feed > 0.0 else 0.0
 
 
 def feed_inputs(model: TrainModel, inputs: FloatArray, states: FloatArray) -> FloatArray:

@@ -5,7 +5,8 @@ called in a process: a second or so on the first call, then microseconds. A
 service that met that on its first posted batch would stall every request queued
 behind it; :func:`warm_up` runs one small invented train through the code paths
 a plant's readings take (inputs, an analyzer update, a dead-time rewind, a late
-reading, the alert rules and the design twin), so the cost is paid at start-up.
+reading, the alert rules, the design twin and the steady expectation), so the cost
+is paid at start-up.
 The kernels' types do not depend on the train, so one small train serves all.
 """
 
@@ -14,6 +15,7 @@ from __future__ import annotations
 import time
 
 from estimator.config import parse_train_config
+from estimator.conversion import design_conversion
 from estimator.session import TrainSession
 
 #: A one-vessel, two-species train: the smallest that takes every code path.
@@ -67,4 +69,5 @@ def warm_up() -> float:
     session.ingest(["A-0"], [t0 + 30.0], [1000.0])  # late: a rewind into the log
     session.flush_alerts()
     session.checkpoint()
+    design_conversion(session.model, session.model.nominal_inputs()[None, :])  # "steady"
     return time.perf_counter() - began
