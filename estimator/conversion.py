@@ -152,6 +152,24 @@ class TwinMark:
     t: float
     u: FloatArray
 
+    def to_dict(self) -> dict[str, Any]:
+        """Return the mark as JSON-safe builtins (for checkpoints)."""
+        return {
+            "x": None if self.x is None else self.x.tolist(),
+            "t": self.t if np.isfinite(self.t) else None,
+            "u": self.u.tolist(),
+        }
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> TwinMark:
+        """Rebuild a mark from :meth:`to_dict` output."""
+        x, t = data["x"], data["t"]
+        return cls(
+            None if x is None else np.array(x, dtype=np.float64),
+            -np.inf if t is None else float(t),
+            np.array(data["u"], dtype=np.float64),
+        )
+
 
 class DesignTwin:
     """The design model run alongside the filter: the dynamic expectation.
@@ -219,17 +237,11 @@ class DesignTwin:
 
     def state_dict(self) -> dict[str, Any]:
         """Return the twin's state as JSON-safe builtins (for checkpoints)."""
-        return {
-            "x": None if self.x is None else self.x.tolist(),
-            "t": self.t if np.isfinite(self.t) else None,
-            "u": self.u.tolist(),
-        }
+        return self.mark().to_dict()
 
     def load(self, data: dict[str, Any]) -> None:
         """Resume from :meth:`state_dict` output (of a twin of the same train)."""
-        x = data["x"]
-        self.x = None if x is None else np.array(x, dtype=np.float64)
-        if self.x is not None and self.x.shape != (self.model.layout.n,):
+        mark = TwinMark.from_dict(data)
+        if mark.x is not None and mark.x.shape != (self.model.layout.n,):
             raise ValueError("design twin state of another state layout")
-        self.t = -np.inf if data["t"] is None else float(data["t"])
-        self.u = np.array(data["u"], dtype=np.float64)
+        self.resume(mark)

@@ -227,8 +227,8 @@ class TrainSession:
         arrays["config"] = np.array(_fingerprint(self.config))
         if self._twin is not None:
             twin = {
-                "now": _mark_dict(self._twin.mark()),
-                "marks": [[t, _mark_dict(m)] for t, m in self._twin_marks.items()],
+                "now": self._twin.state_dict(),
+                "marks": [[t, m.to_dict()] for t, m in self._twin_marks.items()],
             }
             arrays["twin"] = np.frombuffer(json.dumps(twin).encode(), dtype=np.uint8)
         if self.alert_engine is not None:
@@ -287,8 +287,8 @@ class TrainSession:
         session.filter.load_state(arrays)
         if twin is not None and session._twin is not None:
             saved_twin = json.loads(np.asarray(twin, dtype=np.uint8).tobytes().decode())
-            session._twin.resume(_mark_of(saved_twin["now"]))
-            session._twin_marks = {float(t): _mark_of(m) for t, m in saved_twin["marks"]}
+            session._twin.load(saved_twin["now"])
+            session._twin_marks = {float(t): TwinMark.from_dict(m) for t, m in saved_twin["marks"]}
         if alerts is not None:
             state = json.loads(np.asarray(alerts, dtype=np.uint8).tobytes().decode())
             held = state.pop("held", None)
@@ -555,25 +555,6 @@ class TrainSession:
             [ev["time"][rows], ev["nis"][rows], counts.astype(float), group[first].astype(float)]
         )
         return gated, steps, nis_rows[np.argsort(nis_rows[:, 0], kind="stable")]
-
-
-def _mark_dict(mark: TwinMark) -> dict[str, object]:
-    """Return a twin mark as JSON-safe builtins."""
-    return {
-        "x": None if mark.x is None else mark.x.tolist(),
-        "t": mark.t if math.isfinite(mark.t) else None,
-        "u": mark.u.tolist(),
-    }
-
-
-def _mark_of(data: dict[str, object]) -> TwinMark:
-    """Rebuild a twin mark from :func:`_mark_dict` output."""
-    x, t = data["x"], data["t"]
-    return TwinMark(
-        None if x is None else np.array(x, dtype=np.float64),
-        -math.inf if t is None else float(t),  # type: ignore[arg-type]
-        np.array(data["u"], dtype=np.float64),
-    )
 
 
 def _fingerprint(config: TrainConfig) -> str:
