@@ -163,22 +163,14 @@ def test_session_rows_carry_the_twins_expectation_through_rewinds_and_restarts()
     from estimator.config import load_train_config
     from estimator.conversion import DesignTwin
     from estimator.model import TrainModel
-    from estimator.session import EstimateBatch, TrainSession
-    from tests.estimator.test_event_memory import DEMO, MEMORY, ListJournal, plant_batches, run
+    from tests.estimator.test_divergence import final_rows
+    from tests.estimator.test_event_memory import DEMO, plant_batches, run_restarted
 
     config = load_train_config(DEMO)
     assert config.alerts.conversion_shortfall.expectation == "dynamic"
-    batches = plant_batches(hours=5.0)
-    half = len(batches) // 2
-    journal = ListJournal()
-    first = TrainSession(config, memory=MEMORY, journal=journal)
-    outs = run(first, batches[:half], journal)
-    resumed = TrainSession.restore(config, first.checkpoint(), memory=MEMORY, journal=journal)
-    outs += run(resumed, batches[half:], journal)
+    outs = run_restarted(config, plant_batches(hours=5.0))
     assert sum(o.revised_from is not None for o in outs) >= 3
-    rows = EstimateBatch.concat([o.estimates for o in outs])
-    _, last = np.unique(rows.time[::-1], return_index=True)
-    rows = rows.take(np.sort(len(rows) - 1 - last))
+    rows = final_rows(outs)
     expected = DesignTwin(TrainModel.from_config(config)).run(rows.time, rows.inputs)
     np.testing.assert_array_equal(rows.design_conversion, expected)
     # And it is the dynamic expectation, not the steady one: after the feed step at

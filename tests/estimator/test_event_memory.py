@@ -13,7 +13,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from estimator.config import load_train_config
+from estimator.config import TrainConfig, load_train_config
 from estimator.session import SessionOutput, TrainSession
 from estimator.simulate import Profile, Scenario, simulate
 
@@ -92,6 +92,16 @@ def run(session: TrainSession, batches, journal: ListJournal | None) -> list[Ses
     return outs
 
 
+def run_restarted(config: TrainConfig, batches) -> list[SessionOutput]:
+    """Run the batches through a short-memory session restored from a checkpoint half way."""
+    journal = ListJournal()
+    half = len(batches) // 2
+    first = TrainSession(config, memory=MEMORY, journal=journal)
+    outs = run(first, batches[:half], journal)
+    resumed = TrainSession.restore(config, first.checkpoint(), memory=MEMORY, journal=journal)
+    return outs + run(resumed, batches[half:], journal)
+
+
 def assert_same(a: list[SessionOutput], b: list[SessionOutput]) -> None:
     """Same estimates, call by call.
 
@@ -141,13 +151,7 @@ def test_a_restored_short_memory_session_continues_identically():
     journal = ListJournal()
     straight = TrainSession(config, memory=MEMORY, journal=journal)
     expected = run(straight, batches, journal)
-    half = len(batches) // 2
-    journal2 = ListJournal()
-    first = TrainSession(config, memory=MEMORY, journal=journal2)
-    got = run(first, batches[:half], journal2)
-    resumed = TrainSession.restore(config, first.checkpoint(), memory=MEMORY, journal=journal2)
-    got += run(resumed, batches[half:], journal2)
-    assert_same(expected, got)
+    assert_same(expected, run_restarted(config, batches))
 
 
 def test_without_a_journal_the_whole_horizon_stays_in_memory():
